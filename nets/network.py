@@ -1,0 +1,153 @@
+"""A small multilayer perceptron whose parameters live in one flat vector.
+
+Weights and biases are views into ``params`` (and their gradients views into
+``grads``), so an optimiser updates the whole network with one or two numpy
+calls and a checkpoint is a single array. Buffers for each batch size are
+allocated once and reused: at the sizes we run (tens of units) numpy's
+per-call overhead, not arithmetic, is the cost, so every call saved counts.
+
+Shapes: x (batch, n_inputs); weights[i] (fan_in, fan_out); output (batch, n_outputs).
+"""
+from __future__ import annotations
+
+from typing import Sequence
+
+import numpy as np
+
+from .activations import ACTIVATIONS, get_activation, sigmoid
+from .init import init_weights, scheme_for
+from .losses import Loss
+
+HEADS = ("regression", "binary")
+DTYPES = ("float64", "float32")
+
+
+class _Buffers:
+    """Per-batch-size scratch: layer outputs, deltas and derivative temporaries."""
+
+    def __init__(self, sizes: Sequence[int], batch: int, dtype: np.dtype) -> None:
+        self.outs = [np.empty((batch, n), dtype) for n in sizes[1:]]
+        self.deltas = [np.empty((batch, n), dtype) for n in sizes[1:]]
+        self.tmps = [np.empty((batch, n), dtype) for n in sizes[1:]]
+
+
+class Network:
+    """Dense layers with one hidden activation and an identity (regression) or logit (binary) head."""
+
+    def __init__(self, n_inputs: int, hidden: Sequence[int], activation: str = "tanh",
+                 head: str = "regression", n_outputs: int = 1,
+                 rng: np.random.Generator | None = None, dtype: str = "float64",
+                 init: str = "auto") -> None:
+        if head not in HEADS:
+            raise ValueError(f"unknown head {head!r}; choose one of {list(HEADS)}")
+        if dtype not in DTYPES:
+            raise ValueError(f"unknown dtype {dtype!r}; choose one of {list(DTYPES)}")
+        if n_inputs < 1 or n_outputs < 1 or any(int(h) < 1 for h in hidden):
+            raise ValueError(f"layer sizes must be >= 1, got inputs={n_inputs} hidden={list(hidden)}")
+        self.activation = activation
+        self._act = get_activation(activation)
+        self.head = head
+        self.dtype = np.dtype(dtype)
+        self.sizes = [int(n_inputs), *(int(h) for h in hidden), int(n_outputs)]
+        self.params, self.grads = self._allocate()
+        self.weights, self.biases = self._views(self.params)
+        self.weight_grads, self.bias_grads = self._views(self.grads)
+        self.decay_mask = self._weight_mask()
+        self._buffers: dict[int, _Buffers] = {}
+        scheme = scheme_for(activation, init)
+        rng = rng if rng is not None else np.random.default_rng(0)
+        for w in self.weights:
+            w[...] = init_weights(w.shape[0], w.shape[1], scheme, rng, self.dtype)
+
+    def __repr__(self) -> str:
+        return f"Network({self.architecture}, {self.dtype.name}, {self.params.size} params)"
+
+    @property
+    def architecture(self) -> str:
+        """Layer sizes, activation and head, e.g. ``8-32-32-1 tanh regression``."""
+        return "-".join(map(str, self.sizes)) + f" {self.activation} {self.head}"
+
+    @property
+    def n_inputs(self) -> int:
+        return self.sizes[0]
+
+    def _allocate(self) -> tuple[np.ndarray, np.ndarray]:
+        n = sum(a * b + b for a, b in zip(self.sizes[:-1], self.sizes[1:]))
+        return np.zeros(n, self.dtype), np.zeros(n, self.dtype)
+
+    def _views(self, flat: np.ndarray) -> tuple[list[np.ndarray], list[np.ndarray]]:
+        weights, biases, at = [], [], 0
+        for fan_in, fan_out in zip(self.sizes[:-1], self.sizes[1:]):
+            weights.append(flat[at:at + fan_in * fan_out].reshape(fan_in, fan_out))
+            at += fan_in * fan_out
+            biases.append(flat[at:at + fan_out])
+            at += fan_out
+        return weights, biases
+
+    def _weight_mask(self) -> np.ndarray:
+        """1 where ``params`` holds a weight, 0 for a bias: L2 decay skips biases."""
+        mask = np.zeros_like(self.params)
+        for w in self._views(mask)[0]:
+            w[...] = 1.0
+        return mask
+
+    def _buf(self, batch: int) -> _Buffers:
+        buf = self._buffers.get(batch)
+        if buf is None:
+            if len(self._buffers) > 8:      # odd batch sizes (window filling up) must not pile up
+                self._buffers.clear()
+            buf = self._buffers[batch] = _Buffers(self.sizes, batch, self.dtype)
+        return buf
+
+    def forward(self, x: np.ndarray) -> np.ndarray:
+        """Raw output (identity or logit), shape (batch, n_outputs); a reused buffer: copy to keep."""
+        buf = self._buf(x.shape[0])
+        act = self._act.forward
+        a = x
+        last = len(self.weights) - 1
+        for i, (w, b, out) in enumerate(zip(self.weights, self.biases, buf.outs)):
+            np.dot(a, w, out=out)
+            out += b
+            if i < last:
+                act(out)
+            a = out
+        return a
+
+    def predict(self, x: np.ndarray) -> np.ndarray:
+        """Prediction per row: the value (regression) or the probability of 1 (binary)."""
+        z = self.forward(np.asarray(x, dtype=self.dtype).reshape(-1, self.sizes[0]))
+        return sigmoid(z) if self.head == "binary" else z.copy()
+
+    def gradient(self, x: np.ndarray, y: np.ndarray, loss: Loss) -> float:
+        """Fill ``grads`` with d(batch-mean loss)/d(params) by backpropagation; return the loss."""
+        z = self.forward(x)
+        buf = self._buffers[x.shape[0]]
+        value = loss.value(z, y)
+        delta = loss.grad(z, y, out=buf.deltas[-1])
+        backprop = self._act.backprop
+        for i in range(len(self.weights) - 1, -1, -1):
+            a_prev = x if i == 0 else buf.outs[i - 1]
+            np.dot(a_prev.T, delta, out=self.weight_grads[i])
+            np.sum(delta, axis=0, out=self.bias_grads[i])
+            if i > 0:
+                prev = buf.deltas[i - 1]
+                np.dot(delta, self.weights[i].T, out=prev)
+                backprop(buf.outs[i - 1], prev, buf.tmps[i - 1])
+                delta = prev
+        return value
+
+    def state(self) -> dict[str, np.ndarray]:
+        """Arrays that fully describe the network (architecture travels in the header)."""
+        return {"params": self.params.copy(), "sizes": np.asarray(self.sizes, np.int64)}
+
+    def load_state(self, arrays: dict[str, np.ndarray]) -> None:
+        """Restore parameters saved by ``state``; refuses a different architecture."""
+        sizes = [int(s) for s in arrays["sizes"]]
+        if sizes != self.sizes:
+            raise ValueError(f"saved layer sizes {sizes} differ from this network's {self.sizes}")
+        self.params[...] = arrays["params"].astype(self.dtype, copy=False)
+
+
+def activation_names() -> list[str]:
+    """Names accepted for ``activation``."""
+    return sorted(ACTIVATIONS)
