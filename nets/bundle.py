@@ -68,16 +68,24 @@ def check_architecture(header: Mapping[str, Any], net: Network) -> None:
 
 def restore_parts(arrays: Mapping[str, np.ndarray], header: Mapping[str, Any], net: Network,
                   parts: Mapping[str, HasState]) -> dict[str, dict[str, np.ndarray]]:
-    """Load saved arrays into ``net`` and ``parts``; return the parts nobody claimed."""
+    """Load saved arrays into ``net`` and ``parts``; return the parts nobody claimed.
+
+    All or nothing: if any part refuses its arrays, the parts already loaded are put
+    back as they were, so a refused file never leaves a half-restored learner.
+    """
     check_architecture(header, net)
     grouped = split_parts(arrays)
+    targets: dict[str, HasState] = {"net": net, **parts}
+    for name in targets:
+        if name not in grouped:
+            raise StateFileError("shape", f"state file has no part {name!r}")
+    backup = {name: obj.state() for name, obj in targets.items()}
     try:
-        net.load_state(grouped.pop("net"))
-        for name, obj in parts.items():
-            if name not in grouped:
-                raise StateFileError("shape", f"state file has no part {name!r}")
+        for name, obj in targets.items():
             obj.load_state(grouped.pop(name))
     except (KeyError, ValueError) as exc:
+        for name, obj in targets.items():
+            obj.load_state(backup[name])
         raise StateFileError("shape", str(exc)) from None
     return grouped
 

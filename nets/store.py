@@ -84,15 +84,27 @@ def read_state(src: PathOrFile) -> tuple[dict[str, np.ndarray], dict[str, Any]]:
 
 def _read_members(src: PathOrFile) -> dict[str, np.ndarray]:
     try:
-        with np.load(src, allow_pickle=False) as npz:
-            return {name: npz[name] for name in npz.files}
+        loaded = np.load(src, allow_pickle=False)
     except FileNotFoundError:
         raise
+    except (ValueError, zipfile.BadZipFile, EOFError, OSError) as exc:
+        # np.load tries to unpickle anything that is neither .npy nor a zip, so a
+        # "pickle" complaint here means "not an archive", not "pickled arrays"
+        reason = _damage_reason(src)
+        detail = "not a zip/.npz archive" if reason == "not-npz" else str(exc)
+        raise StateFileError(reason, detail) from None
+    if not isinstance(loaded, np.lib.npyio.NpzFile):
+        raise StateFileError("not-npz", "file is a single .npy array, not an .npz archive")
+    try:
+        with loaded as npz:
+            return {name: npz[name] for name in npz.files}
     except ValueError as exc:
         if "pickle" in str(exc).lower():
             raise StateFileError("pickle", "file holds pickled objects; refused") from None
         raise StateFileError(_damage_reason(src), str(exc)) from None
     except (zipfile.BadZipFile, EOFError, OSError, KeyError) as exc:
+        if "CRC" in str(exc):
+            raise StateFileError("checksum", f"archive member damaged ({exc})") from None
         raise StateFileError(_damage_reason(src), str(exc)) from None
 
 

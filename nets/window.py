@@ -71,7 +71,10 @@ class Window:
         elif mode == "recent":
             hl = half_life if half_life else max(1.0, self.size / 4.0)
             age = (rng.exponential(hl / np.log(2.0), size=batch)).astype(np.int64)
-            np.minimum(age, self.size - 1, out=age)
+            # floor of an exponential is geometric and memoryless, so folding ages past the
+            # oldest sample back (mod size) keeps exactly the 2^(-k/hl) weights; clamping
+            # them would pile the overflow onto the single oldest sample
+            np.remainder(age, self.size, out=age)
         else:
             raise ValueError(f"unknown sampling {mode!r}; choose one of {list(SAMPLING)}")
         np.subtract(self.head - 1, age, out=idx)

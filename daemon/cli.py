@@ -1,0 +1,127 @@
+"""``edgeprop`` command line. Exit codes: 0 ok, 2 bad usage or config, 1 runtime failure."""
+from __future__ import annotations
+
+import argparse
+import sys
+from typing import Sequence
+
+from . import __version__
+from .errors import ConfigError, EdgepropError
+from .logs import Log
+
+EXIT_OK, EXIT_FAILURE, EXIT_USAGE = 0, 1, 2
+
+CAUTION = ("Predictions are advisory only: never a protective function (trip, interlock, "
+           "safety instrumented system). Local codes and licensed practice govern.")
+
+
+class _Parser(argparse.ArgumentParser):
+    def error(self, message: str) -> None:     # argparse exits 2 too; keep its wording
+        self.print_usage(sys.stderr)
+        self.exit(EXIT_USAGE, f"{self.prog}: error: {message}\n")
+
+
+def build_parser() -> argparse.ArgumentParser:
+    p = _Parser(prog="edgeprop", description="Online-learning soft sensors for MQTT plant data. "
+                + CAUTION)
+    p.add_argument("--version", action="version", version=f"edgeprop {__version__}")
+    sub = p.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
+
+    def cmd(name: str, help: str, config: bool = True) -> argparse.ArgumentParser:
+        sp = sub.add_parser(name, help=help, description=help)
+        if config:
+            sp.add_argument("-c", "--config", required=True, help="YAML config file")
+        return sp
+
+    cmd("run", "run the daemon in the foreground (systemd runs this)")
+    cmd("check", "validate a config and print it with every default filled in")
+    cmd("status", "show what the running daemon is doing")
+    sp = cmd("checkpoints", "list checkpoints per model")
+    sp.add_argument("--model", help="only this model")
+    sp = cmd("rollback", "restore a model to a checkpoint")
+    sp.add_argument("--model", required=True)
+    sp.add_argument("--to", required=True, metavar="ID", help="checkpoint id (see 'checkpoints')")
+    for verb in ("pin", "unpin"):
+        sp = cmd(verb, f"{verb} a checkpoint so retention {'never' if verb == 'pin' else 'may'} prune it")
+        sp.add_argument("--model", required=True)
+        sp.add_argument("--id", required=True)
+    sp = cmd("save-now", "checkpoint now (the running daemon)")
+    sp.add_argument("--model", help="only this model")
+    sp = cmd("demo", "see edgeprop learn a simulated pumping station, in one command", config=False)
+    sp.add_argument("--duration", type=float, default=120.0, help="real seconds to run (default 120)")
+    sp.add_argument("--speed", type=float, default=120.0,
+                    help="simulated seconds per real second (default 120)")
+    sp.add_argument("--out", default="edgeprop-demo", help="directory for the plot and summary")
+    sp.add_argument("--broker", metavar="HOST:PORT", help="use this broker instead of an embedded one")
+    sp = cmd("record", "capture the traffic of the config's topics to a file")
+    sp.add_argument("--out", required=True)
+    sp.add_argument("--duration", type=float)
+    sp.add_argument("--count", type=int)
+    sp = cmd("replay", "run a capture through the daemon's own path, faster than real time")
+    sp.add_argument("--capture", required=True)
+    sp.add_argument("--out", required=True, help="published messages as JSON lines")
+    sp.add_argument("--report", metavar="DIR", help="also write the plot and summary here")
+    sp = cmd("tune", "replay a capture with several learning rates and rank them")
+    sp.add_argument("--capture", required=True)
+    sp.add_argument("--learning-rates", required=True, help="comma-separated, e.g. 0.001,0.01,0.1")
+    sp.add_argument("--batch-sizes", help="comma-separated, e.g. 16,32")
+    sp.add_argument("--jobs", type=int, help="parallel processes (default: CPU count)")
+    return p
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    """Entry point of the ``edgeprop`` console script."""
+    args = build_parser().parse_args(argv)
+    if args.command is None:
+        build_parser().print_help()
+        return EXIT_USAGE
+    log = Log("info")
+    try:
+        return _dispatch(args, log)
+    except ConfigError as exc:
+        print(f"edgeprop: {exc}", file=sys.stderr)
+        return EXIT_USAGE
+    except EdgepropError as exc:
+        print(f"edgeprop: {exc}", file=sys.stderr)
+        return EXIT_FAILURE
+    except KeyboardInterrupt:
+        return EXIT_FAILURE
+
+
+def _dispatch(args: argparse.Namespace, log: Log) -> int:
+    name = args.command
+    if name == "run":
+        from .service import run_service
+        return run_service(args.config, log)
+    if name == "check":
+        return _check(args.config)
+    if name in ("status", "checkpoints", "rollback", "pin", "unpin", "save-now"):
+        from .operate import operate
+        return operate(name, args)
+    if name == "demo":
+        from .demo import run_demo
+        return run_demo(args)
+    if name == "record":
+        from .record_cli import run_record
+        return run_record(args, log)
+    if name == "replay":
+        from .replay import run_replay
+        return run_replay(args)
+    if name == "tune":
+        from .tune import run_tune
+        return run_tune(args)
+    raise AssertionError(name)
+
+
+def _check(path: str) -> int:
+    import yaml
+
+    from .config import load_config, resolved_config
+    settings = load_config(path)
+    print(f"# {path}: valid. Resolved configuration (defaults filled in):")
+    print(yaml.safe_dump(resolved_config(settings), sort_keys=False), end="")
+    return EXIT_OK
+
+
+if __name__ == "__main__":
+    sys.exit(main())

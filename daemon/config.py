@@ -1,0 +1,695 @@
+"""YAML config into the frozen settings of ``daemon.settings``, with every problem reported at once.
+
+Validation is a table per section (key -> kind with its allowed range or choices) so adding a key
+is one line and every message reads alike: key path, the bad value, what is allowed. Defaults and
+which keys may be null are read from the dataclasses themselves, so they live in one place.
+"""
+from __future__ import annotations
+
+import dataclasses
+import difflib
+import ipaddress
+import math
+import os
+import re
+import stat
+from typing import Callable
+
+import yaml
+
+from daemon import settings as S
+from daemon.errors import ConfigError
+
+
+class _Bad:
+    def __repr__(self) -> str:
+        return "<invalid>"
+
+
+BAD = _Bad()                     # a value that failed; its problem is already recorded
+SOCKET_PATH_MAX = 107            # Linux sun_path is 108 bytes including the NUL (unix(7))
+# PyYAML follows YAML 1.1, which reads 1e-3 (no dot) as text; users mean a number.
+_EXP_NUMBER = re.compile(r"[-+]?(\d+\.?\d*|\.\d+)[eE][-+]?\d+")
+_NAME = re.compile(r"[A-Za-z0-9_]+")
+_NODE = re.compile(r"[A-Za-z0-9_-]+")
+_DOT_PATH = re.compile(r"[^.\s]+(\.[^.\s]+)*")
+_HOST = re.compile(r"[A-Za-z0-9._-]+|[0-9A-Fa-f:.]+")
+INLINE_PASSWORD = ("an inline password is refused: put the password alone in a file only the "
+                   "daemon's user can read (chmod 600) and set password_file to its path")
+
+
+class _Ctx:
+    """Where relative paths start, and the problems found so far."""
+
+    def __init__(self, base_dir: str | None) -> None:
+        self.base_dir = base_dir
+        self.problems: list[str] = []
+
+    def bad(self, path: str, message: str) -> _Bad:
+        self.problems.append(f"{path or '(top level)'}: {message}")
+        return BAD
+
+
+def show(value: object) -> str:
+    """A value as the user would have typed it in YAML, short enough for one message line."""
+    if value is None:
+        return "null"
+    if isinstance(value, bool):
+        return "true" if value else "false"
+    if isinstance(value, (str, int, float)):
+        return repr(value)
+    try:
+        text = yaml.safe_dump(value, default_flow_style=True, width=10**6).strip()
+    except yaml.YAMLError:
+        text = repr(value)
+    text = text.removesuffix("\n...").strip()
+    return text if len(text) <= 60 else text[:57] + "..."
+
+
+def _what(value: object) -> str:
+    for kind, word in ((bool, "a boolean"), (int, "an integer"), (float, "a number"),
+                       (str, "a string"), (list, "a list"), (dict, "a mapping")):
+        if isinstance(value, kind):
+            return word
+    return "null" if value is None else f"a {type(value).__name__}"
+
+
+def _wrong(value: object, expected: str, path: str, ctx: _Ctx) -> _Bad:
+    if value is None:
+        return ctx.bad(path, f"null is not allowed here; expected {expected}")
+    hint = ""
+    if isinstance(value, bool) and "string" in expected:
+        hint = " (YAML reads yes/no/on/off/true/false as booleans; quote the text)"
+    return ctx.bad(path, f"{show(value)} is {_what(value)}; expected {expected}{hint}")
+
+
+def _suggest(word: str, options) -> str:
+    close = difflib.get_close_matches(word, list(options), n=1)
+    return f"; did you mean {close[0]!r}?" if close else ""
+
+
+def _num(x: float) -> str:
+    return str(int(x)) if float(x).is_integer() else repr(x)
+
+
+def _range_text(lo, hi, lo_open: bool, hi_open: bool) -> str:
+    if lo is not None and hi is not None:
+        return f"{'(' if lo_open else '['}{_num(lo)}, {_num(hi)}{')' if hi_open else ']'}"
+    if lo is not None:
+        return f"{'>' if lo_open else '>='} {_num(lo)}"
+    return f"{'<' if hi_open else '<='} {_num(hi)}"
+
+
+# ---- value kinds: each is called as kind(value, key_path, ctx) and returns the value or BAD ----
+
+class _Int:
+    def __init__(self, lo: int | None = None, hi: int | None = None) -> None:
+        self.lo, self.hi = lo, hi
+
+    def __call__(self, v, path, ctx):
+        if isinstance(v, bool) or not isinstance(v, int):
+            return _wrong(v, "an integer", path, ctx)
+        if (self.lo is not None and v < self.lo) or (self.hi is not None and v > self.hi):
+            rng = _range_text(self.lo, self.hi, False, False)
+            return ctx.bad(path, f"{show(v)} is out of range; allowed {rng}")
+        return v
+
+
+class _Float:
+    def __init__(self, lo=None, hi=None, lo_open=False, hi_open=False) -> None:
+        self.lo, self.hi, self.lo_open, self.hi_open = lo, hi, lo_open, hi_open
+
+    def __call__(self, v, path, ctx):
+        if isinstance(v, str) and _EXP_NUMBER.fullmatch(v.strip()):
+            v = float(v)
+        if isinstance(v, bool) or not isinstance(v, (int, float)):
+            return _wrong(v, "a number", path, ctx)
+        v = float(v)
+        if not math.isfinite(v):
+            return ctx.bad(path, f"{show(v)} is not a finite number")
+        lo_bad = self.lo is not None and (v <= self.lo if self.lo_open else v < self.lo)
+        hi_bad = self.hi is not None and (v >= self.hi if self.hi_open else v > self.hi)
+        if lo_bad or hi_bad:
+            rng = _range_text(self.lo, self.hi, self.lo_open, self.hi_open)
+            return ctx.bad(path, f"{show(v)} is out of range; allowed {rng}")
+        return v
+
+
+def _bool(v, path, ctx):
+    return v if isinstance(v, bool) else _wrong(v, "true or false", path, ctx)
+
+
+class _Choice:
+    def __init__(self, *choices: str, aliases: dict | None = None) -> None:
+        self.choices, self.aliases = choices, aliases or {}
+
+    def __call__(self, v, path, ctx):
+        if isinstance(v, (int, str)) and not isinstance(v, bool) and v in self.aliases:
+            return self.aliases[v]
+        allowed = ", ".join(repr(c) for c in self.choices)
+        if not isinstance(v, str):
+            return _wrong(v, f"one of {allowed}", path, ctx)
+        if v not in self.choices:
+            return ctx.bad(path, f"{show(v)} is not one of {allowed}{_suggest(v, self.choices)}")
+        return v
+
+
+class _Str:
+    def __init__(self, pattern: re.Pattern | None = None, rule: str = "") -> None:
+        self.pattern, self.rule = pattern, rule
+
+    def __call__(self, v, path, ctx):
+        if not isinstance(v, str):
+            return _wrong(v, "a string", path, ctx)
+        if not v:
+            return ctx.bad(path, "'' is empty; give a value or leave the key out")
+        if self.pattern is not None and not self.pattern.fullmatch(v):
+            return ctx.bad(path, f"{show(v)} is not allowed; {self.rule}")
+        return v
+
+
+class _Topic:
+    def __init__(self, publish: bool = False) -> None:
+        self.publish = publish
+
+    def __call__(self, v, path, ctx):
+        if not isinstance(v, str):
+            return _wrong(v, "an MQTT topic string", path, ctx)
+        if not v:
+            return ctx.bad(path, "'' is empty; an MQTT topic needs at least one character")
+        for wildcard in "+#":
+            if wildcard in v:
+                why = ("publish topics may not contain wildcards" if self.publish else
+                       "subscribe to one exact topic here (wildcards are not allowed)")
+                return ctx.bad(path, f"{show(v)} contains the wildcard {wildcard!r}; {why}")
+        if "\0" in v or len(v.encode("utf-8")) > 65535:   # MQTT 3.1.1 section 4.7.3
+            return ctx.bad(path, f"{show(v)} is not a valid MQTT topic (NUL or over 65535 bytes)")
+        return v
+
+
+class _Path:
+    def __init__(self, must_exist: bool = False, secret: bool = False, is_dir: bool = False):
+        self.must_exist, self.secret, self.is_dir = must_exist, secret, is_dir
+
+    def resolve(self, v: str, ctx: _Ctx) -> str:
+        v = os.path.expanduser(v)
+        if ctx.base_dir is not None and not os.path.isabs(v):
+            v = os.path.join(ctx.base_dir, v)
+        return os.path.normpath(v)
+
+    def __call__(self, v, path, ctx):
+        if not isinstance(v, str):
+            return _wrong(v, "a file path string", path, ctx)
+        if not v:
+            return ctx.bad(path, "'' is empty; give a path or leave the key out")
+        p = self.resolve(v, ctx)
+        if self.is_dir and os.path.exists(p) and not os.path.isdir(p):
+            return ctx.bad(path, f"{show(p)} exists and is not a directory")
+        if self.must_exist and not os.path.isfile(p):
+            what = "is not a regular file" if os.path.exists(p) else "does not exist"
+            return ctx.bad(path, f"{show(p)} {what}")
+        if self.secret:
+            mode = stat.S_IMODE(os.stat(p).st_mode)
+            if mode & 0o077:
+                return ctx.bad(path, f"{show(p)} has mode {mode:04o} and is readable by "
+                                     f"group/others; chmod 600 it")
+        return p
+
+
+def _listen(v, path, ctx):
+    if not isinstance(v, str):
+        return _wrong(v, "'HOST:PORT' or null", path, ctx)
+    m = re.fullmatch(r"\[([0-9A-Fa-f:.]+)\]:(\d{1,5})|([A-Za-z0-9._-]+):(\d{1,5})", v)
+    ok = m is not None and 1 <= int(m.group(2) or m.group(4)) <= 65535
+    if ok and m.group(1):
+        try:
+            ipaddress.IPv6Address(m.group(1))
+        except ValueError:
+            ok = False
+    if not ok:
+        return ctx.bad(path, f"{show(v)} is not HOST:PORT with port 1..65535; e.g. "
+                             f"'127.0.0.1:9740' or '[::1]:9740' (null disables the endpoint)")
+    return v
+
+
+class _IntList:
+    def __init__(self, item: _Int, max_len: int, what: str) -> None:
+        self.item, self.max_len, self.what = item, max_len, what
+
+    def __call__(self, v, path, ctx):
+        if not isinstance(v, (list, tuple)):
+            return _wrong(v, "a list of integers like [32, 32]", path, ctx)
+        if len(v) > self.max_len:
+            return ctx.bad(path, f"{show(list(v))} has {len(v)} {self.what}; allowed at most "
+                                 f"{self.max_len}")
+        items = tuple(self.item(x, f"{path}[{i}]", ctx) for i, x in enumerate(v))
+        return BAD if BAD in items else items
+
+
+def _lags(v, path, ctx):
+    if not isinstance(v, (list, tuple)):
+        return _wrong(v, "a list of lags in seconds like [0, 30]", path, ctx)
+    if not 1 <= len(v) <= 64:
+        return ctx.bad(path, f"{show(list(v))} has {len(v)} lags; allowed 1 to 64")
+    items = tuple(_Float(0)(x, f"{path}[{i}]", ctx) for i, x in enumerate(v))
+    if BAD in items:
+        return BAD
+    for i, lag in enumerate(items):
+        if lag in items[:i]:
+            return ctx.bad(f"{path}[{i}]", f"{show(lag)} appears twice in {show(list(v))}; "
+                                           f"give each lag once")
+    return items
+
+
+# ---- sections --------------------------------------------------------------------------------
+
+Check = Callable[[dict, dict, str, _Ctx], None]
+
+
+class _Section:
+    """A mapping validated key by key into ``cls``; keys not in the table are reported."""
+
+    def __init__(self, cls, keys: dict, nullable: bool = False, checks: tuple[Check, ...] = (),
+                 refused: dict[str, str] | None = None) -> None:
+        self.cls, self.keys, self.nullable = cls, keys, nullable
+        self.checks, self.refused = checks, refused or {}
+        self.fields = {f.name: f for f in dataclasses.fields(cls)}
+
+    def __call__(self, raw, path, ctx):
+        if raw is None:
+            if self.nullable:
+                return None
+            raw = {}                      # a section left empty in YAML takes every default
+        if not isinstance(raw, dict):
+            return _wrong(raw, "a mapping of keys", path, ctx)
+        for k in raw:
+            if k in self.refused:
+                ctx.bad(_join(path, k), self.refused[k])
+            elif k not in self.keys:
+                hint = _suggest(str(k), self.keys) or f"; allowed keys: {', '.join(self.keys)}"
+                ctx.bad(_join(path, str(k)), f"unknown key{hint}")
+        values = {name: self._one(name, kind, raw, _join(path, name), ctx)
+                  for name, kind in self.keys.items()}
+        for check in self.checks:
+            check(values, raw, path, ctx)
+        if any(_is_bad(v) for v in values.values()):
+            return BAD
+        return self.cls(**values)
+
+    def _one(self, name, kind, raw, path, ctx):
+        f = self.fields[name]
+        if name in raw:
+            if raw[name] is None and str(f.type).startswith("Optional["):
+                return None
+            return kind(raw[name], path, ctx)
+        if f.default is dataclasses.MISSING and f.default_factory is dataclasses.MISSING:
+            return ctx.bad(path, "required key is missing")
+        if isinstance(kind, _Section) and not kind.nullable:
+            return kind({}, path, ctx)
+        default = f.default if f.default is not dataclasses.MISSING else f.default_factory()
+        if isinstance(kind, _Path) and default is not None:
+            return kind.resolve(default, ctx)
+        return default
+
+
+class _ListOf:
+    """A non-empty list of sections whose ``name`` keys must differ."""
+
+    def __init__(self, item: _Section, what: str) -> None:
+        self.item, self.what = item, what
+
+    def __call__(self, raw, path, ctx):
+        if not isinstance(raw, list):
+            return _wrong(raw, f"a list of {self.what}s", path, ctx)
+        if not raw:
+            return ctx.bad(path, f"[] is empty; give at least one {self.what}")
+        items = tuple(_wrong(x, "a mapping of keys", f"{path}[{i}]", ctx) if x is None
+                      else self.item(x, f"{path}[{i}]", ctx) for i, x in enumerate(raw))
+        first: dict[str, int] = {}
+        leaf = path.rsplit(".", 1)[-1]
+        for i, x in enumerate(raw):
+            name = x.get("name") if isinstance(x, dict) else None
+            if isinstance(name, str) and name in first:
+                ctx.bad(f"{path}[{i}].name", f"{show(name)} duplicates {leaf}[{first[name]}].name")
+            elif isinstance(name, str):
+                first[name] = i
+        return items
+
+
+def _join(path: str, key: object) -> str:
+    return f"{path}.{key}" if path else str(key)
+
+
+def _is_bad(v: object) -> bool:
+    return v is BAD or (isinstance(v, tuple) and any(x is BAD for x in v))
+
+
+def _ok(values: dict, *names: str) -> bool:
+    return all(not _is_bad(values[n]) for n in names)
+
+
+# ---- checks across keys ----------------------------------------------------------------------
+
+def _cert_with_key(values, raw, path, ctx):
+    if _ok(values, "cert_file", "key_file") and (values["cert_file"] is None) != (
+            values["key_file"] is None):
+        missing = "key_file" if values["key_file"] is None else "cert_file"
+        ctx.bad(_join(path, missing), "required key is missing; give cert_file and key_file "
+                                      "together (client certificate), or neither")
+
+
+def _broker(values, raw, path, ctx):
+    lo, hi = values["reconnect_min_s"], values["reconnect_max_s"]
+    if _ok(values, "reconnect_min_s", "reconnect_max_s") and lo > hi:
+        ctx.bad(_join(path, "reconnect_max_s"), f"{show(hi)} is below reconnect_min_s "
+                                                f"{show(lo)}; allowed >= reconnect_min_s")
+    if raw.get("password_file") is not None and values["username"] is None:
+        ctx.bad(_join(path, "username"), "required key is missing; password_file is set, "
+                                         "so give the username it belongs to")
+
+
+def _training(values, raw, path, ctx):
+    if not _ok(values, "momentum", "nesterov", "optimizer"):
+        return
+    if values["nesterov"] and values["momentum"] == 0.0:
+        ctx.bad(_join(path, "nesterov"), "true needs momentum > 0 (Nesterov is a form of "
+                                         "momentum); set momentum, e.g. 0.9, or drop nesterov")
+    if values["optimizer"] == "adam" and (values["momentum"] != 0.0 or values["nesterov"]):
+        key = "momentum" if values["momentum"] != 0.0 else "nesterov"
+        ctx.bad(_join(path, key), f"{show(values[key])} applies to optimizer 'sgd' only; "
+                                  f"adam keeps its own moment estimates, so remove it")
+
+
+def _model(values, raw, path, ctx):
+    task, training = values["task"], values["training"]
+    if task is not BAD and training is not BAD:
+        given = isinstance(raw.get("training"), dict) and "loss" in raw["training"]
+        if task == "binary" and not given:
+            values["training"] = training = dataclasses.replace(training, loss="logistic")
+        if task == "binary" and training.loss != "logistic":
+            ctx.bad(f"{path}.training.loss", f"{show(training.loss)} does not fit task "
+                                             f"'binary'; allowed 'logistic'")
+        if task == "regression" and training.loss == "logistic":
+            ctx.bad(f"{path}.training.loss", "'logistic' is for task 'binary'; allowed "
+                                             "'squared' or 'huber' for task 'regression'")
+    target, inputs, publish = values["target"], values["inputs"], values["publish"]
+    if target is BAD or inputs is BAD:
+        return
+    for i, inp in enumerate(inputs):
+        if inp is not BAD and (inp.topic, inp.field) == (target.topic, target.field) \
+                and 0.0 in inp.lags_s:
+            ctx.bad(f"{path}.inputs[{i}]", f"topic {show(inp.topic)} field {show(inp.field)} "
+                    f"is this model's own target; at lag 0 the model would be fed its own "
+                    f"answer (use only lags > 0 for an autoregressive input)")
+    if publish is not BAD and publish.topic is not None:
+        own = {target.topic} | {i.topic for i in inputs if i is not BAD}
+        if publish.topic in own:
+            ctx.bad(f"{path}.publish.topic", f"{show(publish.topic)} is a topic this model "
+                                             f"reads; it would consume its own predictions")
+
+
+def _root(values, raw, path, ctx):
+    node, models, state_dir, control = (values[k] for k in ("node", "models", "state_dir",
+                                                            "control"))
+    if node is not BAD and models is not BAD:
+        status = f"edgeprop/{node}/status"
+        first: dict[str, int] = {}
+        names: set[str] = set()
+        for i, m in enumerate(models):
+            if m is BAD or m.name in names:       # a repeated name is reported already
+                continue
+            names.add(m.name)
+            topic = m.publish.topic or f"edgeprop/{node}/{m.name}"
+            where = f"models[{i}].publish.topic" if m.publish.topic else f"models[{i}].name"
+            if topic == status:
+                ctx.bad(where, f"publishing to {topic!r} collides with the daemon's status "
+                               f"topic; choose another model name or publish.topic")
+            elif topic in first:
+                ctx.bad(where, f"publishing to {topic!r} collides with models[{first[topic]}]; "
+                               f"give each model its own publish topic")
+            else:
+                first[topic] = i
+    if state_dir is not BAD and control is not BAD:
+        sock = control.socket or os.path.join(state_dir, "control.sock")
+        size = len(os.fsencode(sock))
+        if size > SOCKET_PATH_MAX:
+            source = "" if control.socket else " (derived from state_dir)"
+            ctx.bad("control.socket", f"{show(sock)}{source} is {size} bytes long; a Unix "
+                                      f"socket path allows at most {SOCKET_PATH_MAX}; set a "
+                                      f"shorter control.socket")
+
+
+# ---- the schema: one table per section; defaults and nullability come from daemon.settings ----
+
+_POS = _Float(0, lo_open=True)
+_NAME_RULE = "use letters, digits and _ only (it becomes a metrics label and a directory name)"
+_FIELD_RULE = "give a dot path into the JSON object like 'value' or 'data.temp'"
+
+_SOURCE_KEYS = {
+    "topic": _Topic(),
+    "field": _Str(_DOT_PATH, _FIELD_RULE),
+    "time_field": _Str(_DOT_PATH, _FIELD_RULE),
+}
+_INPUT = _Section(S.InputSettings, {
+    "name": _Str(_NAME, _NAME_RULE),
+    **_SOURCE_KEYS,
+    "lags_s": _lags,
+})
+_MODEL = _Section(S.ModelSettings, {
+    "name": _Str(_NAME, _NAME_RULE),
+    "task": _Choice("regression", "binary"),
+    "target": _Section(S.SourceSettings, dict(_SOURCE_KEYS)),
+    "inputs": _ListOf(_INPUT, "input"),
+    "align": _Section(S.AlignSettings, {
+        "max_age_s": _POS,
+        "late_tolerance_s": _Float(0),
+        "history": _Int(1, 1_000_000),
+    }),
+    "net": _Section(S.NetSettings, {
+        "hidden": _IntList(_Int(1, 4096), 8, "hidden layers"),
+        "activation": _Choice("tanh", "relu", "leaky_relu", "sigmoid", "identity"),
+        "seed": _Int(0, 2**63 - 1),
+        "dtype": _Choice("float64", "float32"),
+        "init": _Choice("auto", "glorot", "he"),
+    }),
+    "training": _Section(S.TrainingSettings, {
+        "learning_rate": _Float(0, 10, lo_open=True),
+        "batch_size": _Int(1, 65536),
+        "window": _Int(1, 10_000_000),
+        "steps_per_sample": _Int(1, 1000),
+        "loss": _Choice("squared", "huber", "logistic"),
+        "huber_delta": _POS,
+        "optimizer": _Choice("sgd", "adam"),
+        "momentum": _Float(0, 1, hi_open=True),
+        "nesterov": _bool,
+        "weight_decay": _Float(0, 1),
+        "clip_norm": _POS,
+        "warmup_samples": _Int(0, 10_000_000),
+        "sampling": _Choice("uniform", "recent"),
+        "input_clip": _Float(0, 1000, lo_open=True),
+    }, checks=(_training,)),
+    "drift": _Section(S.DriftSettings, {
+        "detector": _Choice("page_hinkley", "adwin", "none"),
+        "delta": _Float(0),
+        "threshold": _POS,
+        "min_samples": _Int(1),
+        "confidence": _Float(0, 1, lo_open=True, hi_open=True),
+        "input_threshold": _POS,
+        "input_reference": _Int(2),
+        "input_recent": _Int(1),
+        "on_drift": _Choice("none", "boost_lr", "shrink_window", "restore"),
+        "boost_factor": _Float(1, 1000, lo_open=True),
+        "boost_samples": _Int(1),
+        "hold_samples": _Int(0),
+    }),
+    "interval": _Section(S.IntervalSettings, {
+        "coverage": _Float(0, 1, lo_open=True, hi_open=True),
+        "window": _Int(10, 1_000_000),    # fewer residuals give no usable quantile (common practice, no source)
+        "adapt_rate": _Float(0, 1, hi_open=True),
+    }),
+    "guard": _Section(S.GuardSettings, {
+        "enabled": _bool,
+        "blowup_factor": _Float(1, lo_open=True),
+        "blowup_samples": _Int(1),
+        "lr_factor": _Float(0, 1, lo_open=True),
+    }),
+    "publish": _Section(S.PublishSettings, {
+        "topic": _Topic(publish=True),
+        "qos": _Int(0, 2),
+        "retain": _bool,
+        "every_s": _POS,
+    }),
+}, checks=(_model,))
+
+SCHEMA = _Section(S.Settings, {
+    "node": _Str(_NODE, "use letters, digits, _ and - only (it goes into topics and labels)"),
+    "broker": _Section(S.BrokerSettings, {
+        "host": _Str(_HOST, "give a host name or IP address only, without scheme or port"),
+        "port": _Int(1, 65535),
+        "client_id": _Str(),
+        "username": _Str(),
+        "password_file": _Path(must_exist=True, secret=True),
+        "tls": _Section(S.TlsSettings, {
+            "ca_file": _Path(must_exist=True),
+            "cert_file": _Path(must_exist=True),
+            "key_file": _Path(must_exist=True),
+        }, nullable=True, checks=(_cert_with_key,)),
+        "keepalive_s": _Int(1, 65535),
+        "protocol": _Choice("3.1.1", "5", aliases={5: "5"}),
+        "reconnect_min_s": _Float(0, 3600, lo_open=True),
+        "reconnect_max_s": _Float(0, 86400, lo_open=True),
+        "queue_size": _Int(1, 10_000_000),
+        "max_payload_bytes": _Int(1, 268_435_455),   # MQTT 3.1.1 section 2.2.3 maximum
+    }, checks=(_broker,), refused={"password": INLINE_PASSWORD}),
+    "state_dir": _Path(is_dir=True),
+    "checkpoints": _Section(S.CheckpointSettings, {
+        "every_s": _POS,
+        "keep": _Int(1),
+        "fresh_on_mismatch": _bool,
+    }),
+    "metrics": _Section(S.MetricsSettings, {
+        "listen": _listen,
+        "tls": _Section(S.MetricsTls, {
+            "cert_file": _Path(must_exist=True),
+            "key_file": _Path(must_exist=True),
+        }, nullable=True),
+        "basic_auth": _Section(S.MetricsAuth, {
+            "username": _Str(),
+            "password_file": _Path(must_exist=True, secret=True),
+        }, nullable=True, refused={"password": INLINE_PASSWORD}),
+    }),
+    "control": _Section(S.ControlSettings, {"socket": _Path()}),
+    "logging": _Section(S.LoggingSettings, {"level": _Choice("debug", "info", "warning", "error")}),
+    "models": _ListOf(_MODEL, "model"),
+}, checks=(_root,))
+
+
+# ---- public API ------------------------------------------------------------------------------
+
+class _Loader(yaml.SafeLoader):
+    """SafeLoader that also notes repeated keys, which plain YAML silently collapses to the last."""
+
+    def __init__(self, stream: str) -> None:
+        super().__init__(stream)
+        self.duplicates: list[str] = []
+
+    def construct_mapping(self, node, deep=False):
+        first: dict[object, int] = {}
+        for key_node, _ in node.value:
+            if not isinstance(key_node, yaml.ScalarNode) or key_node.tag.endswith(":merge"):
+                continue
+            key = self.construct_object(key_node, deep=True)
+            line = key_node.start_mark.line + 1
+            if key in first:
+                self.duplicates.append(
+                    f"line {line}, column {key_node.start_mark.column + 1}: key {show(key)} "
+                    f"appears again (first on line {first[key]}); YAML would keep only the "
+                    f"last one, so merge or remove one")
+            else:
+                first[key] = line
+        return super().construct_mapping(node, deep=deep)
+
+
+def load_config(path: str) -> S.Settings:
+    """Read and validate the YAML config at ``path``; relative paths in it start at its directory."""
+    try:
+        with open(path, encoding="utf-8") as fh:
+            text = fh.read()
+    except OSError as exc:
+        raise ConfigError([f"{path}: cannot read the config file: {exc.strerror or exc}"]) from None
+    except UnicodeDecodeError as exc:
+        raise ConfigError([f"{path}: not UTF-8 text (bad byte at offset {exc.start})"]) from None
+    loader = None
+    try:
+        loader = _Loader(text)
+        raw = loader.get_single_data()
+    except yaml.reader.ReaderError as exc:          # a control character such as NUL
+        pos = exc.position
+        where = f"{path}:{text.count(chr(10), 0, pos) + 1}:{pos - text.rfind(chr(10), 0, pos)}"
+        raise ConfigError([f"{where}: not valid YAML: character #x{exc.character:04x} is not "
+                           f"allowed in a YAML file"]) from None
+    except yaml.MarkedYAMLError as exc:
+        mark = exc.problem_mark or exc.context_mark
+        where = f"{path}:{mark.line + 1}:{mark.column + 1}" if mark else path
+        raise ConfigError([f"{where}: not valid YAML: {exc.problem or exc.context}"]) from None
+    except yaml.YAMLError as exc:
+        raise ConfigError([f"{path}: not valid YAML: {exc}"]) from None
+    finally:
+        if loader is not None:
+            loader.dispose()
+    if raw is None:
+        raise ConfigError([f"{path}: the file is empty; it needs at least 'models'"])
+    repeated = [f"{path}: {d}" for d in loader.duplicates]
+    try:
+        settings = parse_config(raw, os.path.dirname(os.path.abspath(path)))
+    except ConfigError as exc:
+        raise ConfigError(repeated + exc.problems) from None
+    if repeated:
+        raise ConfigError(repeated)
+    return settings
+
+
+def parse_config(raw: object, base_dir: str | None = None) -> S.Settings:
+    """Validate a plain mapping (as YAML gives it) into ``Settings``, or raise every problem found."""
+    ctx = _Ctx(base_dir)
+    if not isinstance(raw, dict):
+        _wrong(raw, "a mapping with keys such as node, broker and models", "", ctx)
+        raise ConfigError(ctx.problems)
+    settings = SCHEMA(raw, "", ctx)
+    if ctx.problems or settings is BAD:
+        raise ConfigError(ctx.problems or ["(top level): invalid configuration"])
+    return settings
+
+
+def _plain(obj: object, kind: object) -> object:
+    if obj is None:
+        return None
+    if isinstance(kind, _Section):
+        return {name: _plain(getattr(obj, name), sub) for name, sub in kind.keys.items()}
+    if isinstance(kind, _ListOf):
+        return [_plain(x, kind.item) for x in obj]
+    return list(obj) if isinstance(obj, tuple) else obj
+
+
+def resolved_config(settings: S.Settings, derived: bool = False) -> dict:
+    """Every setting as plain YAML-safe data, defaults filled in; with ``derived``, also the
+    publish topics and control socket the daemon computes when they are null.
+
+    Settings hold no password (only ``password_file`` paths), so neither does this.
+    """
+    out = _plain(settings, SCHEMA)
+    if derived:
+        out["control"]["socket"] = settings.control_socket
+        for model, plain in zip(settings.models, out["models"]):
+            plain["publish"]["topic"] = settings.publish_topic(model)
+    return out
+
+
+def _changes(old: object, new: object, path: str, out: list[str]) -> None:
+    if isinstance(old, dict) and isinstance(new, dict):
+        for key in list(old) + [k for k in new if k not in old]:
+            _changes(old.get(key), new.get(key), _join(path, key), out)
+    elif _named(old) and _named(new):
+        before = {x["name"]: x for x in old}
+        after = {x["name"]: x for x in new}
+        for name in list(before) + [n for n in after if n not in before]:
+            where = f"{path}[{name}]"
+            if name not in after:
+                out.append(f"{where}: removed")
+            elif name not in before:
+                out.append(f"{where}: added")
+            else:
+                _changes(before[name], after[name], where, out)
+    elif old != new:
+        out.append(f"{path}: {show(old)} -> {show(new)}")
+
+
+def _named(v: object) -> bool:
+    return isinstance(v, list) and all(isinstance(x, dict) and "name" in x for x in v)
+
+
+def diff_settings(old: S.Settings, new: S.Settings) -> list[str]:
+    """Changed key paths, e.g. ``models[bearing_temp].training.learning_rate: 0.01 -> 0.005``."""
+    out: list[str] = []
+    _changes(resolved_config(old), resolved_config(new), "", out)
+    return out

@@ -1,0 +1,565 @@
+"""Drift detection on the loss stream and on each input, and the response it calls for.
+
+What the loss detectors watch. The per-sample loss of a standardised target is
+heavy-tailed (squared loss of a Gaussian residual is chi-square with one degree
+of freedom: mean 1, spread 1.4) and its level depends on how good the model has
+become. Fed raw to Page-Hinkley with the customary allowance 0.005 and alarm
+level 50, such a stream raises a false alarm every few thousand samples; ADWIN's
+bound assumes values in [0, 1]. So both detectors watch the *relative loss*
+
+    u = min(loss / (4 * reference), 1)
+
+where ``reference`` is the loss level the model has been achieving (a running
+mean over its first samples, then an exponentially weighted mean with a time
+constant of ``LOSS_REFERENCE_SAMPLES``, updated with the loss clipped at 4x the
+reference so one outlier cannot move it). The factor 4 is the 2-sigma point of
+a squared Gaussian residual. ``u`` is unit-free (any sensor, squared or Huber
+or logistic loss), bounded in [0, 1] as ADWIN's bound requires, and has a
+spread (about 0.28 for Gaussian residuals) small enough that the settings'
+defaults keep false alarms near zero while a 3-sigma residual step lifts its
+mean by about 0.7 (detected in well under 100 samples). Measured figures are in
+``tests/bench_detectors.py``. Only *increases* of the loss raise an alarm: a
+model that gets better is not drift.
+
+Inputs: per input, the mean of the newest ``input_recent`` raw values against a
+reference mean, in units of the reference spread (both from the first
+``input_reference`` values after a start or a rebase).
+"""
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+from typing import Optional, Union
+
+import numpy as np
+
+from .settings import DriftSettings
+
+LARGE_LOSS = 4.0                # loss ratio mapped to u = 1; 2-sigma of a squared Gaussian residual
+LOSS_REFERENCE_SAMPLES = 1000   # time constant of the loss reference (common practice, no source)
+LOSS_FLOOR = 1e-9               # reference floor for a perfect fit (common practice, no source)
+ADWIN_BUCKETS = 5               # buckets per size class, "M" in Bifet & Gavalda 2007
+ADWIN_CHECK_EVERY = 16          # samples between cut checks (pure-Python cost; see Adwin)
+ADWIN_MIN_SIDE = 5              # fewest samples on either side of a cut (common practice, no source)
+ACTIONS = ("none", "boost_lr", "shrink_window", "restore")
+DETECTORS = ("page_hinkley", "adwin", "none")
+
+
+def _scalar(arrays: dict[str, np.ndarray], key: str) -> float:
+    return float(np.asarray(arrays[key]))
+
+
+class PageHinkley:
+    """Page-Hinkley test for an increase of the mean (Page 1954, Hinkley's cumulative form).
+
+    m_t = sum_{i<=t} (x_i - mean_t - delta), alarm when m_t - min_{s<=t} m_s > threshold.
+    After an alarm it starts afresh; ``since_change`` keeps the estimated change age
+    (samples since the minimum of m_t, the classic change-point estimate).
+    """
+
+    def __init__(self, delta: float = 0.005, threshold: float = 50.0, min_samples: int = 30) -> None:
+        self.delta, self.threshold, self.min_samples = float(delta), float(threshold), int(min_samples)
+        self.since_change, self.alarm_score = 0, 0.0
+        self.reset()
+
+    def __repr__(self) -> str:
+        return f"PageHinkley(delta={self.delta}, threshold={self.threshold}, n={self.n})"
+
+    def reset(self) -> None:
+        """Forget everything seen so far."""
+        self.n, self.mean, self.cum, self.low, self.low_at = 0, 0.0, 0.0, 0.0, 0
+
+    @property
+    def score(self) -> float:
+        """Statistic over its alarm level (1.0 = alarm)."""
+        return (self.cum - self.low) / self.threshold
+
+    def update(self, x: float) -> bool:
+        """Add one value; True on the sample that raises an alarm."""
+        self.n += 1
+        self.mean += (x - self.mean) / self.n
+        self.cum += x - self.mean - self.delta
+        if self.cum < self.low:
+            self.low, self.low_at = self.cum, self.n
+        if self.n >= self.min_samples and self.cum - self.low > self.threshold:
+            self.since_change, self.alarm_score = self.n - self.low_at, self.score
+            self.reset()
+            return True
+        return False
+
+    def state(self) -> dict[str, np.ndarray]:
+        """Plain arrays for a checkpoint."""
+        return {"n": np.asarray(self.n), "mean": np.asarray(self.mean), "cum": np.asarray(self.cum),
+                "low": np.asarray(self.low), "low_at": np.asarray(self.low_at),
+                "since": np.asarray(self.since_change)}
+
+    def load_state(self, arrays: dict[str, np.ndarray]) -> None:
+        """Restore from ``state`` output."""
+        self.n, self.low_at = int(arrays["n"]), int(arrays["low_at"])
+        self.mean, self.cum, self.low = (_scalar(arrays, k) for k in ("mean", "cum", "low"))
+        self.since_change = int(arrays["since"])
+
+
+class Adwin:
+    """ADWIN2 adaptive window (Bifet & Gavalda 2007) over an exponential histogram.
+
+    The window is kept as buckets of 1, 2, 4, ... samples, at most ``ADWIN_BUCKETS``
+    per size, so memory and a full check cost O(log W). A cut between an older and
+    a newer part is made when their means differ by more than
+
+        eps = sqrt(2/m * var_W * ln(2/d)) + 2/(3m) * ln(2/d),  m = 1/(1/n0 + 1/n1),
+        d = confidence / ln(W)
+
+    (the paper's normal-approximation bound; d = delta/ln W is from memory of the
+    same paper). The oldest bucket is dropped until no cut remains. Cuts are only
+    looked for every ``ADWIN_CHECK_EVERY`` samples: checking every sample in pure
+    Python costs ~50 us, which 100,000-sample tests cannot afford; the price is up to
+    that many samples of extra delay. A cut where the newer part is *higher* is an
+    alarm; a cut where it is lower just shrinks the window. Values should lie in [0, 1].
+    """
+
+    def __init__(self, confidence: float = 0.002, min_samples: int = 30,
+                 check_every: int = ADWIN_CHECK_EVERY) -> None:
+        self.confidence, self.min_samples = float(confidence), int(min_samples)
+        self.check_every = int(check_every)
+        self.since_change, self.alarm_score = 0, 0.0
+        self.reset()
+
+    def __repr__(self) -> str:
+        return f"Adwin(confidence={self.confidence}, width={self.width}, buckets={self.n_buckets})"
+
+    def reset(self) -> None:
+        """Empty the window."""
+        self.sums: list[list[float]] = [[]]    # sums[level] oldest first; bucket size 2**level
+        self.m2s: list[list[float]] = [[]]     # squared deviations about each bucket's mean
+        self.width, self.total, self.m2 = 0, 0.0, 0.0
+        self.tick, self._score = 0, 0.0
+
+    @property
+    def n_buckets(self) -> int:
+        return sum(len(s) for s in self.sums)
+
+    @property
+    def score(self) -> float:
+        """Largest (newer - older) mean gap over its cut bound at the last check (1.0 = alarm)."""
+        return self._score
+
+    def update(self, x: float) -> bool:
+        """Add one value; True on the sample where an increase is found."""
+        old_mean = self.total / self.width if self.width else x
+        self.width += 1
+        self.total += x
+        self.m2 += (x - old_mean) * (x - self.total / self.width)   # Welford
+        self.sums[0].append(x)
+        self.m2s[0].append(0.0)
+        self._compress()
+        self.tick += 1
+        if self.tick < self.check_every or self.width < self.min_samples:
+            return False
+        self.tick = 0
+        return self._check()
+
+    def _compress(self) -> None:
+        level = 0
+        while len(self.sums[level]) > ADWIN_BUCKETS:
+            if level + 1 == len(self.sums):
+                self.sums.append([])
+                self.m2s.append([])
+            s1, s2 = self.sums[level].pop(0), self.sums[level].pop(0)
+            v1, v2 = self.m2s[level].pop(0), self.m2s[level].pop(0)
+            n = float(1 << level)
+            # Chan, Golub & LeVeque (1979): M2 of two equal-sized parts
+            self.sums[level + 1].append(s1 + s2)
+            self.m2s[level + 1].append(v1 + v2 + (s1 - s2) ** 2 / (2.0 * n))
+            level += 1
+
+    def _drop_oldest(self) -> None:
+        top = len(self.sums) - 1
+        s, v, n = self.sums[top].pop(0), self.m2s[top].pop(0), 1 << top
+        rest = self.width - n
+        if rest == 0:
+            self.reset()
+            return
+        diff = s / n - (self.total - s) / rest
+        self.m2 = max(self.m2 - v - diff * diff * n * rest / self.width, 0.0)
+        self.total -= s
+        self.width = rest
+        while top > 0 and not self.sums[top]:
+            self.sums.pop()
+            self.m2s.pop()
+            top -= 1
+
+    def _check(self) -> bool:
+        alarm = False
+        while True:
+            cut, gap = self._find_cut()
+            if not cut:
+                return alarm
+            if gap > 0 and not alarm:
+                alarm, self.alarm_score = True, self._score
+            self._drop_oldest()
+            if alarm:
+                self.since_change = self.width
+
+    def _find_cut(self) -> tuple[bool, float]:
+        w, total = self.width, self.total
+        if w < 2 * ADWIN_MIN_SIDE:
+            return False, 0.0
+        log_term = math.log(2.0 * math.log(w) / self.confidence)
+        var = self.m2 / w
+        n0, s0, best = 0, 0.0, 0.0
+        for level in range(len(self.sums) - 1, -1, -1):
+            size = 1 << level
+            for s in self.sums[level]:
+                n0 += size
+                s0 += s
+                n1 = w - n0
+                if n0 < ADWIN_MIN_SIDE:
+                    continue
+                if n1 < ADWIN_MIN_SIDE:
+                    self._score = best
+                    return False, 0.0
+                gap = (total - s0) / n1 - s0 / n0
+                m = 1.0 / (1.0 / n0 + 1.0 / n1)
+                eps = math.sqrt(2.0 / m * var * log_term) + 2.0 / (3.0 * m) * log_term
+                best = max(best, gap / eps)
+                if abs(gap) > eps:
+                    self._score = best
+                    return True, gap
+        self._score = best
+        return False, 0.0
+
+    def state(self) -> dict[str, np.ndarray]:
+        """Plain arrays for a checkpoint: buckets oldest first with their size class."""
+        levels = [lv for lv in range(len(self.sums) - 1, -1, -1) for _ in self.sums[lv]]
+        sums = [s for lv in range(len(self.sums) - 1, -1, -1) for s in self.sums[lv]]
+        m2s = [v for lv in range(len(self.m2s) - 1, -1, -1) for v in self.m2s[lv]]
+        return {"levels": np.asarray(levels, np.int64), "sums": np.asarray(sums, np.float64),
+                "m2s": np.asarray(m2s, np.float64), "width": np.asarray(self.width),
+                "total": np.asarray(self.total), "m2": np.asarray(self.m2),
+                "tick": np.asarray(self.tick), "score": np.asarray(self._score),
+                "since": np.asarray(self.since_change)}
+
+    def load_state(self, arrays: dict[str, np.ndarray]) -> None:
+        """Restore from ``state`` output."""
+        levels = np.asarray(arrays["levels"], np.int64)
+        top = int(levels.max()) if levels.size else 0
+        self.sums = [[] for _ in range(top + 1)]
+        self.m2s = [[] for _ in range(top + 1)]
+        for lv, s, v in zip(levels.tolist(), arrays["sums"].tolist(), arrays["m2s"].tolist()):
+            self.sums[lv].append(s)
+            self.m2s[lv].append(v)
+        if sum(1 << lv for lv in levels.tolist()) != int(arrays["width"]):
+            raise ValueError("ADWIN state: bucket sizes do not add up to the window width")
+        self.width, self.tick = int(arrays["width"]), int(arrays["tick"])
+        self.total, self.m2, self._score = (_scalar(arrays, k) for k in ("total", "m2", "score"))
+        self.since_change = int(arrays["since"])
+
+
+class NoDetector:
+    """Stands in when ``detector: none``: watches nothing, never alarms."""
+
+    score = alarm_score = 0.0
+    since_change = 0
+
+    def update(self, x: float) -> bool:
+        """Never alarms."""
+        return False
+
+    def reset(self) -> None:
+        """Nothing to forget."""
+
+    def state(self) -> dict[str, np.ndarray]:
+        return {}
+
+    def load_state(self, arrays: dict[str, np.ndarray]) -> None:
+        """Nothing to restore."""
+
+
+Detector = Union[PageHinkley, Adwin, NoDetector]
+
+
+class RelativeLoss:
+    """Turns the per-sample loss into u in [0, 1] against the level the model has been achieving."""
+
+    def __init__(self, warmup: int, time_constant: int = LOSS_REFERENCE_SAMPLES) -> None:
+        self.warmup, self.time_constant = max(int(warmup), 1), int(time_constant)
+        self.reset()
+
+    def __repr__(self) -> str:
+        return f"RelativeLoss(reference={self.reference:.4g}, n={self.n})"
+
+    def reset(self) -> None:
+        """Start a new reference (after a drift is acted on)."""
+        self.n, self.reference = 0, 0.0
+
+    def update(self, loss: float) -> Optional[float]:
+        """Relative loss of this sample, or None while the reference is forming."""
+        u = None
+        if self.n >= self.warmup:
+            u = min(loss / (LARGE_LOSS * self.reference), 1.0)
+            loss = min(loss, LARGE_LOSS * self.reference)
+        self.n += 1
+        ref = self.reference + (loss - self.reference) / min(self.n, self.time_constant)
+        self.reference = max(ref, LOSS_FLOOR)
+        return u
+
+    def state(self) -> dict[str, np.ndarray]:
+        return {"n": np.asarray(self.n), "reference": np.asarray(self.reference)}
+
+    def load_state(self, arrays: dict[str, np.ndarray]) -> None:
+        """Restore from ``state`` output."""
+        self.n, self.reference = int(arrays["n"]), _scalar(arrays, "reference")
+
+
+class InputShift:
+    """Shift of one input's recent mean from its reference mean, in reference spreads."""
+
+    def __init__(self, reference: int = 500, recent: int = 50, threshold: float = 4.0) -> None:
+        self.reference, self.recent, self.threshold = int(reference), int(recent), float(threshold)
+        self.rebase()
+
+    def __repr__(self) -> str:
+        return f"InputShift(score={self.score:.3g}, reference {self.ref_n}/{self.reference})"
+
+    def rebase(self) -> None:
+        """Start a new reference from the next ``reference`` values."""
+        self.ref_n, self.ref_mean, self.ref_m2 = 0, 0.0, 0.0
+        self.buf = [0.0] * self.recent
+        self.head, self.count, self.total = 0, 0, 0.0
+        self.score, self.above = 0.0, False
+
+    @property
+    def ready(self) -> bool:
+        """True once the reference is complete and the recent window full."""
+        return self.ref_n >= self.reference and self.count >= self.recent
+
+    @property
+    def ref_std(self) -> float:
+        return math.sqrt(self.ref_m2 / self.ref_n) if self.ref_n else 0.0
+
+    def update(self, x: float) -> bool:
+        """Add one raw value; True on the sample where the shift first exceeds the threshold."""
+        if self.ref_n < self.reference:
+            self.ref_n += 1
+            d = x - self.ref_mean
+            self.ref_mean += d / self.ref_n
+            self.ref_m2 += d * (x - self.ref_mean)
+        self.total += x - self.buf[self.head]
+        self.buf[self.head] = x
+        self.head = (self.head + 1) % self.recent
+        self.count = min(self.count + 1, self.recent)
+        if self.head == 0:
+            self.total = math.fsum(self.buf)        # no rounding creep over millions of samples
+        if not self.ready:
+            return False
+        # a constant reference (a setpoint) gets a tiny spread, so any real move is a shift
+        spread = max(self.ref_std, 1e-9 * max(1.0, abs(self.ref_mean)))   # common practice, no source
+        self.score = abs(self.total / self.recent - self.ref_mean) / spread
+        fired = self.score > self.threshold and not self.above
+        self.above = self.score > self.threshold
+        return fired
+
+    def resize(self, reference: int, recent: int, threshold: float) -> None:
+        """New sizes from a reload; keeps the reference and the newest recent values."""
+        values = self.newest()[-recent:]
+        self.reference, self.recent, self.threshold = int(reference), int(recent), float(threshold)
+        self.buf = values + [0.0] * (self.recent - len(values))
+        self.count = len(values)
+        self.head = self.count % self.recent
+        self.total = math.fsum(values)
+
+    def newest(self) -> list[float]:
+        """The recent values, oldest first."""
+        if self.count < self.recent:
+            return self.buf[:self.count]
+        return self.buf[self.head:] + self.buf[:self.head]
+
+    def state(self) -> dict[str, np.ndarray]:
+        return {"ref_n": np.asarray(self.ref_n), "ref_mean": np.asarray(self.ref_mean),
+                "ref_m2": np.asarray(self.ref_m2), "recent": np.asarray(self.newest(), np.float64),
+                "score": np.asarray(self.score), "above": np.asarray(int(self.above))}
+
+    def load_state(self, arrays: dict[str, np.ndarray]) -> None:
+        """Restore from ``state`` output; a different ``recent`` size keeps the newest values."""
+        self.ref_n = int(arrays["ref_n"])
+        self.ref_mean, self.ref_m2 = _scalar(arrays, "ref_mean"), _scalar(arrays, "ref_m2")
+        self.score, self.above = _scalar(arrays, "score"), bool(int(arrays["above"]))
+        values = [float(v) for v in np.asarray(arrays["recent"], np.float64).ravel()][-self.recent:]
+        self.buf = values + [0.0] * (self.recent - len(values))
+        self.count = len(values)
+        self.head = self.count % self.recent
+        self.total = math.fsum(values)
+
+
+@dataclass(frozen=True)
+class DriftEvent:
+    """A newly detected change: ``source`` is "loss" or an input name; ``since`` is the
+    estimated number of samples from the change to its detection (the post-change part)."""
+
+    source: str
+    score: float
+    since: int
+
+
+@dataclass(frozen=True)
+class DriftAction:
+    """What the learner should do about an event.
+
+    ``none``; ``boost_lr``: multiply the learning rate by ``lr_factor`` for ``samples``;
+    ``shrink_window``: keep only the newest ``samples`` (the post-change part);
+    ``restore``: go back to the newest checkpoint older than ``samples`` samples.
+    """
+
+    kind: str
+    lr_factor: float = 1.0
+    samples: int = 0
+
+
+def action_for(settings: DriftSettings, event: Optional[DriftEvent]) -> DriftAction:
+    """The response ``settings.on_drift`` calls for on ``event``."""
+    kind = settings.on_drift
+    if kind not in ACTIONS:
+        raise ValueError(f"drift.on_drift is {kind!r}; allowed: {', '.join(ACTIONS)}")
+    if kind == "boost_lr":
+        return DriftAction(kind, float(settings.boost_factor), int(settings.boost_samples))
+    if kind in ("shrink_window", "restore"):
+        return DriftAction(kind, 1.0, max(event.since if event else 0, 1))
+    return DriftAction("none", 1.0, 0)
+
+
+def make_detector(settings: DriftSettings) -> Detector:
+    """The loss detector ``settings.detector`` names."""
+    if settings.detector == "page_hinkley":
+        return PageHinkley(settings.delta, settings.threshold, settings.min_samples)
+    if settings.detector == "adwin":
+        return Adwin(settings.confidence, settings.min_samples)
+    if settings.detector == "none":
+        return NoDetector()
+    raise ValueError(f"drift.detector is {settings.detector!r}; allowed: {', '.join(DETECTORS)}")
+
+
+class DriftMonitor:
+    """One model's drift watch: the loss detector, an input shift per input, and the response.
+
+    After any event the loss detector and its reference start afresh and every input
+    reference is rebased, so one change raises one event. ``active`` (the published
+    ``drift`` flag) stays up for ``hold_samples`` samples from the event, counting the
+    event's own sample, or while a learning-rate boost lasts.
+    """
+
+    def __init__(self, settings: DriftSettings, input_names: list[str]) -> None:
+        self.settings = settings
+        self.input_names = list(input_names)
+        self.relative = RelativeLoss(settings.min_samples)
+        self.detector = make_detector(settings)
+        self.inputs = [InputShift(settings.input_reference, settings.input_recent,
+                                  settings.input_threshold) for _ in self.input_names]
+        self.response = action_for(settings, None)
+        self.hold_left = self.boost_left = self.samples = self.events = 0
+
+    def __repr__(self) -> str:
+        return (f"DriftMonitor({self.settings.detector}, inputs={len(self.inputs)}, "
+                f"events={self.events}, active={self.active})")
+
+    @property
+    def active(self) -> bool:
+        """True while a change is being acted on (the published ``drift`` flag)."""
+        return self.hold_left > 0 or self.boost_left > 0
+
+    @property
+    def loss_score(self) -> float:
+        """Loss detector statistic over its alarm level (1.0 = alarm)."""
+        return float(self.detector.score)
+
+    @property
+    def input_scores(self) -> dict[str, float]:
+        """Per input: recent-mean shift in reference spreads (0 until its reference is complete)."""
+        return {name: s.score for name, s in zip(self.input_names, self.inputs)}
+
+    def update(self, loss: float, x_raw: np.ndarray) -> Optional[DriftEvent]:
+        """Watch one scored sample; returns an event when a new change is found.
+
+        ``x_raw`` holds one raw (lag-0) value per input name. Non-finite values are
+        skipped (the guard deals with a non-finite loss).
+        """
+        if len(x_raw) != len(self.inputs):
+            raise ValueError(f"drift monitor got {len(x_raw)} input values, expected "
+                             f"{len(self.inputs)} ({', '.join(self.input_names)})")
+        self.samples += 1
+        self.hold_left = max(self.hold_left - 1, 0)
+        self.boost_left = max(self.boost_left - 1, 0)
+        event = None
+        if math.isfinite(loss):
+            u = self.relative.update(loss)
+            if u is not None and self.detector.update(u):
+                event = DriftEvent("loss", float(self.detector.alarm_score), int(self.detector.since_change))
+        fired = []
+        for name, shift, value in zip(self.input_names, self.inputs, x_raw):
+            value = float(value)
+            if math.isfinite(value) and shift.update(value):
+                fired.append((shift.score, name))
+        if event is None and fired:
+            score, name = max(fired)
+            event = DriftEvent(name, float(score), self.settings.input_recent)
+        if event is not None:
+            self._act(event)
+        return event
+
+    def _act(self, event: DriftEvent) -> None:
+        self.events += 1
+        self.response = action_for(self.settings, event)
+        self.hold_left = self.settings.hold_samples
+        if self.response.kind == "boost_lr":
+            self.boost_left = self.response.samples
+        self.detector.reset()
+        self.relative.reset()
+        for shift in self.inputs:
+            shift.rebase()
+
+    def apply_settings(self, new: DriftSettings) -> None:
+        """Take reloaded settings, keeping every statistic that still means the same."""
+        action_for(new, None)                       # refuse an unknown on_drift before changing anything
+        if new.detector != self.settings.detector:
+            self.detector = make_detector(new)
+        elif isinstance(self.detector, PageHinkley):
+            self.detector.delta, self.detector.threshold = float(new.delta), float(new.threshold)
+            self.detector.min_samples = int(new.min_samples)
+        elif isinstance(self.detector, Adwin):
+            self.detector.confidence, self.detector.min_samples = float(new.confidence), int(new.min_samples)
+        self.relative.warmup = max(int(new.min_samples), 1)
+        for shift in self.inputs:
+            shift.resize(new.input_reference, new.input_recent, new.input_threshold)
+        self.hold_left = min(self.hold_left, new.hold_samples)
+        self.boost_left = min(self.boost_left, new.boost_samples)
+        self.settings = new
+
+    def state(self) -> dict[str, np.ndarray]:
+        """Plain arrays for a checkpoint (keys without '/')."""
+        arrays = {"detector": np.asarray(DETECTORS.index(self.settings.detector)),
+                  "n_inputs": np.asarray(len(self.inputs)), "hold_left": np.asarray(self.hold_left),
+                  "boost_left": np.asarray(self.boost_left), "samples": np.asarray(self.samples),
+                  "events": np.asarray(self.events),
+                  "response": np.asarray([ACTIONS.index(self.response.kind), self.response.lr_factor,
+                                          self.response.samples], np.float64)}
+        arrays.update({f"det.{k}": v for k, v in self.detector.state().items()})
+        arrays.update({f"rel.{k}": v for k, v in self.relative.state().items()})
+        for i, shift in enumerate(self.inputs):
+            arrays.update({f"in{i}.{k}": v for k, v in shift.state().items()})
+        return arrays
+
+    def load_state(self, arrays: dict[str, np.ndarray]) -> None:
+        """Restore; a saved state of another detector kind leaves a fresh detector."""
+        n = int(arrays["n_inputs"])
+        if n != len(self.inputs):
+            raise ValueError(f"drift state has {n} inputs, the model has {len(self.inputs)}")
+        if int(arrays["detector"]) == DETECTORS.index(self.settings.detector):
+            self.detector.load_state({k[4:]: v for k, v in arrays.items() if k.startswith("det.")})
+        self.relative.load_state({k[4:]: v for k, v in arrays.items() if k.startswith("rel.")})
+        for i, shift in enumerate(self.inputs):
+            p = f"in{i}."
+            shift.load_state({k[len(p):]: v for k, v in arrays.items() if k.startswith(p)})
+        kind, factor, samples = np.asarray(arrays["response"], np.float64).tolist()
+        self.response = DriftAction(ACTIONS[int(kind)], float(factor), int(samples))
+        self.hold_left, self.boost_left = int(arrays["hold_left"]), int(arrays["boost_left"])
+        self.samples, self.events = int(arrays["samples"]), int(arrays["events"])

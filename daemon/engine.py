@@ -1,0 +1,272 @@
+"""The worker's per-message path: decode -> align -> predict -> publish -> learn -> watch.
+
+``Engine`` knows nothing of sockets or threads: it is handed one inbound
+message at a time and a ``publish`` callable, and it reads time only from the
+clock it is given. ``run`` drives it from the broker, ``replay`` from a
+capture file: the same code, so replay reproduces what run publishes.
+"""
+from __future__ import annotations
+
+import json
+import math
+import time
+from typing import Callable, Optional
+
+import numpy as np
+
+from .errors import CheckpointError, PayloadError, SampleSkipped
+from .learner import Diverged, Prediction
+from .logs import LogFn, RateLimited
+from .payloads import TARGET_ROLE, TopicRoutes, decode
+from .runtime import ModelRuntime
+from .settings import ModelSettings, Settings
+
+Publish = Callable[[str, bytes, int, bool], object]
+
+ADVISORY = ("Predictions are advisory only. Never use them as, or in place of, a protective "
+            "function (trip, interlock, safety instrumented system); local codes and licensed "
+            "practice govern.")
+
+
+class Engine:
+    """Holds every model and applies one message at a time to them."""
+
+    def __init__(self, settings: Settings, publish: Publish, log: LogFn, metrics=None,
+                 clock: Callable[[], float] = time.time, stores: Optional[dict] = None) -> None:
+        self.settings = settings
+        self.publish = publish
+        self.log = log
+        self.say_once = RateLimited(log)
+        self.metrics = metrics
+        self.clock = clock
+        self.routes = TopicRoutes(settings)
+        self.models: dict[str, ModelRuntime] = {}
+        for m in settings.models:
+            store = (stores or {}).get(m.name)
+            self.models[m.name] = ModelRuntime(m, settings.publish_topic(m), store)
+            if metrics is not None:
+                metrics.register_model(m.name, self.models[m.name].learner.net.architecture,
+                                       [i.name for i in m.inputs])
+        self.last_checkpoint_t = clock()
+        self.rejects: dict[str, int] = {}
+        self.drift_events: dict[str, int] = {}
+        self.guard_trips: dict[str, int] = {}
+        self.messages = 0
+
+    # -- one inbound message ---------------------------------------------------
+    def handle(self, topic: str, payload: bytes, arrival_t: float) -> None:
+        """Apply one MQTT message; bad input is counted and logged, never raised."""
+        self.messages += 1
+        started = time.perf_counter()
+        try:
+            routes = self.routes.lookup(topic)
+        except PayloadError as exc:
+            self._reject(exc, topic=topic)
+            return
+        for route in routes:
+            rt = self.models[route.model]
+            try:
+                readings = decode(payload, route.source, arrival_t, self.settings.broker.max_payload_bytes)
+                if route.role == TARGET_ROLE:
+                    for reading in readings:
+                        self._on_target(rt, reading.t, reading.value)
+                else:
+                    for reading in readings:
+                        rt.assembler.add(route.role, reading)
+            except PayloadError as exc:
+                self._reject(exc, model=rt.name, input=route.role)
+            except SampleSkipped as exc:
+                self._skip(rt, exc)
+            except Diverged as exc:
+                self._trip_guard(rt, "non_finite", str(exc))
+        if self.metrics is not None:
+            self.metrics.observe_message(time.perf_counter() - started)
+
+    def _on_target(self, rt: ModelRuntime, t: float, y: float) -> None:
+        if rt.learner.binary and y not in (0.0, 1.0):
+            raise PayloadError("wrong_type", f"binary target must be 0 or 1, got {y!r}")
+        x = rt.assembler.features_at(t)
+        pred: Prediction | None = None
+        if rt.learner.warmed_up:
+            pred = rt.learner.predict(x)
+            self._publish_prediction(rt, t, pred, y)
+        result = rt.learner.learn(x, y, pred)
+        if pred is None:
+            return
+        rt.last_loss = result.loss
+        if not rt.learner.binary:
+            rt.interval.update(y, pred.value)
+        event = rt.drift.update(result.loss, x[rt.lag0])
+        if event is not None:
+            self._on_drift(rt, event, t)
+        trip = rt.guard.observe(result.loss)
+        if trip is not None:
+            self._trip_guard(rt, trip, f"short loss {rt.guard.short:.4g} vs long-run {rt.guard.long:.4g}")
+        if self.metrics is not None:
+            self.metrics.observe_sample(rt, pred, y, result)
+
+    # -- publishing ---------------------------------------------------------------
+    def _publish_prediction(self, rt: ModelRuntime, t: float, pred: Prediction, y: float | None) -> None:
+        low = high = outside = None
+        if not rt.learner.binary:
+            bounds = rt.interval.bounds(pred.value)
+            if bounds is not None and all(map(math.isfinite, bounds)):
+                low, high = bounds
+                if y is not None:
+                    outside = bool(y < low or y > high)
+        msg = {"model": rt.name, "t": t, "predicted": pred.value,
+               "measured": y, "residual": None if y is None else y - pred.value,
+               "low": low, "high": high, "outside": outside, "drift": bool(rt.drift.active),
+               "checkpoint": rt.checkpoint_id, "samples": rt.learner.samples}
+        try:
+            body = json.dumps(msg, separators=(",", ":"), allow_nan=False).encode()
+        except ValueError:
+            raise Diverged(f"refusing to publish a non-finite number: {msg}") from None
+        p = rt.settings.publish
+        self.publish(rt.publish_topic, body, p.qos, p.retain)
+        if self.metrics is not None:
+            self.metrics.observe_published(rt.name)
+
+    def publish_model_info(self) -> None:
+        """Retained description of each model beside its predictions, with the advisory notice."""
+        for rt in self.models.values():
+            info = {"model": rt.name, "node": self.settings.node, "task": rt.settings.task,
+                    "architecture": rt.learner.net.architecture,
+                    "inputs": [i.name for i in rt.settings.inputs], "advisory": ADVISORY}
+            self.publish(rt.publish_topic + "/info", json.dumps(info).encode(), 1, True)
+
+    # -- periodic work --------------------------------------------------------------
+    def tick(self, now: float) -> None:
+        """Predict-only cadence and the checkpoint timer; call often, between messages."""
+        for rt in self.models.values():
+            every = rt.settings.publish.every_s
+            if every and (rt.last_tick is None or now - rt.last_tick >= every):
+                rt.last_tick = now
+                self._predict_only(rt, now)
+        if now - self.last_checkpoint_t >= self.settings.checkpoints.every_s:
+            self.last_checkpoint_t = now
+            self.checkpoint_all("timer")
+
+    def _predict_only(self, rt: ModelRuntime, now: float) -> None:
+        if not rt.learner.warmed_up or not rt.assembler.fresh_at(now):
+            return
+        try:
+            pred = rt.learner.predict(rt.assembler.features_at(now))
+            self._publish_prediction(rt, now, pred, None)
+        except SampleSkipped:
+            return
+        except Diverged as exc:
+            self._trip_guard(rt, "non_finite", str(exc))
+
+    def checkpoint_all(self, reason: str) -> None:
+        """Save every model; a failure is counted and logged, learning goes on."""
+        for rt in self.models.values():
+            self.checkpoint_model(rt, reason)
+
+    def checkpoint_model(self, rt: ModelRuntime, reason: str) -> str | None:
+        try:
+            cid = rt.checkpoint(reason)
+        except (CheckpointError, OSError) as exc:
+            self.log("error", "checkpoint_failed", model=rt.name, reason=reason, error=str(exc))
+            if self.metrics is not None:
+                self.metrics.checkpoint_failed(rt.name)
+            return None
+        if cid is not None:
+            self.log("info", "checkpoint_saved", model=rt.name, id=cid, reason=reason,
+                     samples=rt.learner.samples)
+            if self.metrics is not None:
+                self.metrics.checkpoint_saved(rt.name, cid, self.clock())
+        return cid
+
+    # -- when things go wrong ----------------------------------------------------------
+    def _reject(self, exc: PayloadError, **where: object) -> None:
+        self.rejects[exc.reason] = self.rejects.get(exc.reason, 0) + 1
+        if self.metrics is not None:
+            self.metrics.rejected(exc.reason, where.get("model"))
+        self.say_once("warning", "payload_rejected", (exc.reason, where.get("model"), where.get("input")),
+                      reason=exc.reason, detail=str(exc), **where)
+
+    def _skip(self, rt: ModelRuntime, exc: SampleSkipped) -> None:
+        if self.metrics is not None:
+            self.metrics.skipped(rt.name, exc.reason)
+        self.say_once("info", "sample_skipped", (rt.name, exc.reason), model=rt.name,
+                      reason=exc.reason, detail=str(exc))
+
+    def _trip_guard(self, rt: ModelRuntime, reason: str, detail: str) -> None:
+        source = rt.restore_good()
+        rt.guard.after_restore()
+        rt.learner.cut_learning_rate(rt.settings.guard.lr_factor)
+        self.guard_trips[rt.name] = self.guard_trips.get(rt.name, 0) + 1
+        self.log("warning", "guard_tripped", model=rt.name, reason=reason, detail=detail,
+                 restored=source, learning_rate=rt.learner.learning_rate)
+        if self.metrics is not None:
+            self.metrics.guard_tripped(rt.name, reason)
+
+    def _on_drift(self, rt: ModelRuntime, event, t: float) -> None:
+        action = rt.drift.response
+        self.drift_events[rt.name] = self.drift_events.get(rt.name, 0) + 1
+        self.log("warning", "drift_detected", model=rt.name, source=event.source,
+                 score=event.score, action=action.kind)
+        if self.metrics is not None:
+            self.metrics.drift_event(rt.name, event.source)
+        if action.kind == "boost_lr":
+            rt.learner.boost(action.lr_factor, action.samples)
+        elif action.kind == "shrink_window":
+            keep = max(rt.learner.training.batch_size, getattr(event, "since", 0) or action.samples)
+            rt.learner.window.keep_newest(keep)
+        elif action.kind == "restore" and rt.store is not None:
+            since = getattr(event, "since", 0) or 0
+            cid = rt.store.id_before(t - since * self._sample_period(rt))
+            if cid is not None:
+                self.rollback(rt.name, cid, cause="drift")
+
+    @staticmethod
+    def _sample_period(rt: ModelRuntime) -> float:
+        """Rough seconds per target sample, to turn a detection delay into a time."""
+        return 1.0
+
+    # -- operator actions (between two messages) ----------------------------------------
+    def rollback(self, model: str, cid: str, cause: str = "operator") -> str:
+        rt = self._model(model)
+        rt.restore(cid)
+        rt.guard.after_restore()
+        self.log("warning", "rolled_back", model=model, to=cid, cause=cause, samples=rt.learner.samples)
+        if self.metrics is not None:
+            self.metrics.rolled_back(model, cause, cid)
+        return cid
+
+    def _model(self, name: str) -> ModelRuntime:
+        try:
+            return self.models[name]
+        except KeyError:
+            raise CheckpointError(f"no model named {name!r}; models: {', '.join(self.models)}") from None
+
+    def status(self) -> dict:
+        return {"node": self.settings.node, "messages": self.messages, "rejects": dict(self.rejects),
+                "models": {name: rt.status() for name, rt in self.models.items()}}
+
+    def restore_all(self) -> None:
+        """On start: newest fitting checkpoint per model, or fresh (logged either way)."""
+        for rt in self.models.values():
+            cid = rt.restore_newest()
+            mismatches = getattr(rt.store, "mismatches", []) if rt.store else []
+            if cid is None and mismatches and not self.settings.checkpoints.fresh_on_mismatch:
+                raise CheckpointError(
+                    f"model {rt.name!r}: saved checkpoints do not fit the configured network "
+                    f"({mismatches[0][1]}); set checkpoints.fresh_on_mismatch: true to start fresh, "
+                    f"or restore the old network settings")
+            self.log("info", "model_restored" if cid else "model_fresh", model=rt.name, id=cid,
+                     samples=rt.learner.samples, architecture=rt.learner.net.architecture)
+            if cid and self.metrics is not None:
+                self.metrics.checkpoint_restored(rt.name, cid)
+
+    def apply_settings(self, new: Settings) -> list[str]:
+        """Hot-apply what can change live; return refusals (the rest is applied)."""
+        from .reload import apply_to_engine
+        return apply_to_engine(self, new)
+
+
+def model_settings_shape(m: ModelSettings) -> tuple:
+    """What a model's network shape depends on; a change needs a new model."""
+    return (m.task, tuple((i.name, i.lags_s) for i in m.inputs), m.net.hidden, m.net.activation,
+            m.net.dtype, m.training.optimizer)

@@ -1,0 +1,83 @@
+"""The hand-off between paho's network thread and the worker: a bounded drop-oldest queue.
+
+The network thread must never wait on the worker: a stalled socket reader makes the
+broker queue (and then silently drop) messages for us, and stops keepalive pings.
+So ``put`` never blocks; when the worker falls behind, the oldest readings go first,
+because a fresh reading is worth more to an online learner than a stale one.
+"""
+from __future__ import annotations
+
+import threading
+from collections import deque
+from dataclasses import dataclass
+
+
+@dataclass(slots=True)
+class Inbound:
+    """One message as it arrived: topic, raw payload, arrival time (epoch seconds)."""
+
+    topic: str
+    payload: bytes
+    arrival_t: float
+
+
+class InboundQueue:
+    """Thread-safe FIFO of at most ``capacity`` items; a full queue drops its oldest item."""
+
+    def __init__(self, capacity: int) -> None:
+        if not isinstance(capacity, int) or isinstance(capacity, bool) or capacity < 1:
+            raise ValueError(f"inbound queue capacity must be an integer >= 1, got {capacity!r}")
+        self.capacity = capacity
+        self.dropped = 0          # items discarded because the queue was full (read by metrics)
+        self._items: deque[Inbound] = deque()
+        self._cond = threading.Condition(threading.Lock())
+        self._woken = False
+
+    def __repr__(self) -> str:
+        return f"InboundQueue(depth={self.depth}, capacity={self.capacity}, dropped={self.dropped})"
+
+    @property
+    def depth(self) -> int:
+        """Items waiting for the worker now."""
+        return len(self._items)
+
+    def put(self, item: Inbound) -> None:
+        """Append ``item``; if full, discard the oldest item first. Never blocks on the consumer."""
+        with self._cond:
+            if len(self._items) >= self.capacity:
+                self._items.popleft()
+                self.dropped += 1
+            self._items.append(item)
+            self._cond.notify()
+
+    def get(self, timeout: float) -> Inbound | None:
+        """Oldest item, or None after ``timeout`` seconds or when ``wake()`` is called."""
+        with self._cond:
+            if not self._wait_locked(timeout):
+                return None
+            return self._items.popleft()
+
+    def get_many(self, max_items: int, timeout: float) -> list[Inbound]:
+        """Up to ``max_items`` oldest items taken under one lock; empty on timeout or ``wake()``."""
+        if max_items < 1:
+            raise ValueError(f"max_items must be >= 1, got {max_items!r}")
+        with self._cond:
+            if not self._wait_locked(timeout):
+                return []
+            n = min(max_items, len(self._items))
+            return [self._items.popleft() for _ in range(n)]
+
+    def wake(self) -> None:
+        """Make a waiting (or the next) ``get``/``get_many`` return at once, e.g. on a signal."""
+        with self._cond:
+            self._woken = True
+            self._cond.notify_all()
+
+    def _wait_locked(self, timeout: float) -> bool:
+        """Wait (lock held) until an item is queued; False on timeout or wake-up."""
+        if not self._items:
+            self._cond.wait_for(lambda: self._items or self._woken, timeout=max(0.0, timeout))
+        if self._woken:
+            self._woken = False
+            return False
+        return bool(self._items)

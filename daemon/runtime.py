@@ -1,0 +1,159 @@
+"""Everything one model carries at run time, and how it is saved and restored.
+
+A ``ModelRuntime`` bundles the learner with its input histories, drift monitor,
+interval, guard and checkpoint store, so a checkpoint is one consistent cut of
+all of them. The last checkpoint taken is also kept in memory as the "last
+good" state the guard falls back to (replay has no disk, but the same guard).
+"""
+from __future__ import annotations
+
+import time
+from typing import Callable
+
+import numpy as np
+
+from nets import StateFileError
+from nets.bundle import split_parts
+
+from .align import FeatureAssembler
+from .checkpoints import CheckpointStore
+from .drift import DriftMonitor
+from .errors import CheckpointError
+from .guard import DivergenceGuard
+from .intervals import ConformalInterval
+from .learner import ModelLearner
+from .settings import ModelSettings
+
+
+class ModelRuntime:
+    """One configured model with all of its state; owned by the worker thread only."""
+
+    def __init__(self, settings: ModelSettings, publish_topic: str,
+                 store: CheckpointStore | None) -> None:
+        self.settings = settings
+        self.name = settings.name
+        self.publish_topic = publish_topic
+        self.store = store
+        self.learner = ModelLearner(settings)
+        self.assembler = FeatureAssembler(settings)
+        self.drift = DriftMonitor(settings.drift, [i.name for i in settings.inputs])
+        self.interval = ConformalInterval(settings.interval)
+        self.guard = DivergenceGuard(settings.guard)
+        self.checkpoint_id: str | None = None
+        self.good: dict[str, np.ndarray] | None = None     # last checkpoint's arrays
+        self.last_tick: float | None = None
+        self.lag0 = self._lag0_columns(settings)
+        self.last_loss = float("nan")
+
+    def __repr__(self) -> str:
+        return f"ModelRuntime({self.name!r}, samples={self.learner.samples}, checkpoint={self.checkpoint_id})"
+
+    @staticmethod
+    def _lag0_columns(settings: ModelSettings) -> np.ndarray:
+        """Column of each input's first listed lag: the value the input-shift detector watches."""
+        cols, at = [], 0
+        for inp in settings.inputs:
+            cols.append(at)
+            at += len(inp.lags_s)
+        return np.asarray(cols, np.int64)
+
+    # -- state --------------------------------------------------------------
+    def state_arrays(self) -> dict[str, np.ndarray]:
+        arrays = self.learner.state_arrays()
+        for part, obj in (("align", self.assembler), ("drift", self.drift),
+                          ("interval", self.interval), ("guard", self.guard)):
+            for key, arr in obj.state().items():
+                arrays[f"{part}/{key}"] = np.asarray(arr)
+        return arrays
+
+    def load_arrays(self, arrays: dict[str, np.ndarray]) -> None:
+        """Restore every part; raises StateFileError('shape') when arrays do not fit."""
+        fresh = ModelLearner(self.settings)
+        try:
+            rest = fresh.load_arrays(dict(arrays))
+            parts = {"align": FeatureAssembler(self.settings),
+                     "drift": DriftMonitor(self.settings.drift, [i.name for i in self.settings.inputs]),
+                     "interval": ConformalInterval(self.settings.interval),
+                     "guard": DivergenceGuard(self.settings.guard)}
+            for name, obj in parts.items():
+                if name in rest:
+                    obj.load_state(rest[name])
+        except (KeyError, ValueError, TypeError, SyntaxError, CheckpointError) as exc:
+            raise StateFileError("shape", f"checkpoint does not fit model {self.name!r}: {exc}") from None
+        self.learner = fresh
+        self.assembler, self.drift = parts["align"], parts["drift"]
+        self.interval, self.guard = parts["interval"], parts["guard"]
+        self.good = dict(arrays)
+
+    def meta(self, reason: str) -> dict:
+        return {"model": self.name, "samples": self.learner.samples,
+                "loss": self.guard.long if self.guard.seen else None,
+                "learning_rate": self.learner.learning_rate, "reason": reason,
+                **self.learner.header()}
+
+    def checkpoint(self, reason: str) -> str | None:
+        """Save now; returns the new id (None without a store). Raises CheckpointError."""
+        if not self.learner.weights_finite():
+            raise CheckpointError(f"model {self.name!r} has non-finite weights; not saved")
+        arrays = self.state_arrays()
+        self.good = arrays
+        if self.store is None:
+            return None
+        self.checkpoint_id = self.store.save(arrays, self.meta(reason))
+        return self.checkpoint_id
+
+    def restore_newest(self) -> str | None:
+        """Load the newest checkpoint that fits; None when there is none."""
+        if self.store is None:
+            return None
+        found = self.store.load_newest(self._accept)
+        if found is None:
+            return None
+        cid, arrays, _meta = found
+        self.load_arrays(arrays)
+        self.checkpoint_id = cid
+        return cid
+
+    def _accept(self, meta: dict) -> str | None:
+        try:
+            self.learner.check_header(meta)
+        except StateFileError as exc:
+            return str(exc)
+        return None
+
+    def restore(self, cid: str) -> None:
+        """Load a named checkpoint (rollback)."""
+        if self.store is None:
+            raise CheckpointError("no checkpoint store in this mode")
+        arrays, meta = self.store.load(cid)
+        self.learner.check_header(meta)
+        self.load_arrays(arrays)
+        self.checkpoint_id = cid
+
+    def restore_good(self) -> str:
+        """Fall back to the last good state (guard); a fresh model if there never was one."""
+        if self.good is not None:
+            self.load_arrays(self.good)
+            return self.checkpoint_id or "memory"
+        self.learner = ModelLearner(self.settings)
+        return "fresh"
+
+    def status(self) -> dict:
+        lr = self.learner
+        return {"samples": lr.samples, "steps": lr.counters.steps, "warmed_up": lr.warmed_up,
+                "recent_loss": self.guard.short if self.guard.seen else None,
+                "long_loss": self.guard.long if self.guard.seen else None,
+                "learning_rate": lr.learning_rate, "configured_learning_rate": lr.training.learning_rate,
+                "checkpoint": self.checkpoint_id, "drift_active": bool(self.drift.active),
+                "interval_coverage": self.interval.coverage, "architecture": lr.net.architecture,
+                "window": len(lr.window)}
+
+
+def store_for(state_dir: str, model: ModelSettings, keep: int, log: Callable[..., None],
+              clock: Callable[[], float] = time.time) -> CheckpointStore:
+    """The checkpoint store of one model: ``<state_dir>/<model>/``."""
+    import os
+    return CheckpointStore(os.path.join(state_dir, model.name), keep, clock=clock, log=log)
+
+
+__all__ = ["ModelRuntime", "store_for", "split_parts"]

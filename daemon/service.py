@@ -1,0 +1,243 @@
+"""The long-running process: wires broker, queue, worker, control, metrics and signals.
+
+Threads and who owns what:
+  main thread   - signals only: handlers set flags and wake the worker (gunicorn-style)
+  paho thread   - network I/O; only enqueues inbound messages
+  worker thread - owns every model; handles messages, ticks, control requests, reloads
+  control/metrics threads - socket servers; never touch model state
+"""
+from __future__ import annotations
+
+import os
+import signal
+import threading
+import time
+from typing import Callable, Mapping
+
+from . import sdnotify
+from .checkpoints import CheckpointStore
+from .config import diff_settings, load_config
+from .control import ControlServer
+from .engine import Engine
+from .errors import CheckpointError, ConfigError, ControlError, EdgepropError
+from .inbound import Inbound, InboundQueue
+from .logs import Log
+from .metrics import Metrics, serve
+from .mqtt_link import BrokerLink
+from .settings import Settings
+
+READY_WITHOUT_BROKER_S = 20.0   # report ready anyway, so a broker outage at boot is no restart loop
+STOP_DEADLINE_S = 4.0           # finish, save and disconnect within this after SIGTERM
+BATCH = 256                     # messages taken from the queue under one lock
+
+
+class Flags:
+    """Requests from signal handlers to the worker; plain booleans set from one place."""
+
+    def __init__(self) -> None:
+        self.stop = False
+        self.reload = False
+
+
+class Service:
+    """``edgeprop run``: one instance per process."""
+
+    def __init__(self, config_path: str, settings: Settings, log: Log,
+                 clock: Callable[[], float] = time.time, env: Mapping[str, str] | None = None) -> None:
+        self.config_path = config_path
+        self.settings = settings
+        self.log = log
+        self.clock = clock
+        self.env = dict(os.environ if env is None else env)
+        self.flags = Flags()
+        self.inbound = InboundQueue(settings.broker.queue_size)
+        self.metrics = Metrics(node=settings.node)
+        self.engine = Engine(settings, self._publish, log, self.metrics, clock,
+                             stores=self._stores(settings))
+        self.link: BrokerLink | None = None
+        self.control: ControlServer | None = None
+        self.http = None
+        self._ready = False
+        self._started = time.monotonic()
+        self._watchdog_s = sdnotify.watchdog_interval_s(self.env)
+        self._last_ping = 0.0
+        self.exit_code = 0
+
+    def _stores(self, settings: Settings) -> dict[str, CheckpointStore]:
+        return {m.name: CheckpointStore(os.path.join(settings.state_dir, m.name),
+                                        settings.checkpoints.keep, clock=self.clock, log=self.log)
+                for m in settings.models}
+
+    # -- start and stop --------------------------------------------------------------
+    def run(self) -> int:
+        """Serve until SIGTERM/SIGINT; returns the process exit code."""
+        self.engine.restore_all()
+        self.control = ControlServer(self.settings.control_socket, wake=self.inbound.wake, log=self.log)
+        self.http = serve(self.settings.metrics, self.metrics.registry)
+        topics = self.engine.routes.topics
+        self.link = BrokerLink(self.settings.broker, self.settings.node, topics,
+                               on_message=self._enqueue, clock=self.clock, log=self.log)
+        self._install_signals()
+        worker = threading.Thread(target=self._worker, name="edgeprop-worker", daemon=True)
+        self.link.start()
+        self.log("info", "started", node=self.settings.node, models=len(self.engine.models),
+                 topics=len(topics), metrics=self.settings.metrics.listen,
+                 control=self.settings.control_socket)
+        worker.start()
+        while worker.is_alive():
+            worker.join(0.5)
+        return self.exit_code
+
+    def _install_signals(self) -> None:
+        def on_stop(signum, frame):
+            self.flags.stop = True
+            self.inbound.wake()
+
+        def on_hup(signum, frame):
+            self.flags.reload = True
+            self.inbound.wake()
+
+        signal.signal(signal.SIGTERM, on_stop)
+        signal.signal(signal.SIGINT, on_stop)
+        signal.signal(signal.SIGHUP, on_hup)
+
+    def _enqueue(self, topic: str, payload: bytes, arrival_t: float) -> None:
+        self.inbound.put(Inbound(topic, payload, arrival_t))
+
+    def _publish(self, topic: str, payload: bytes, qos: int, retain: bool) -> object:
+        return self.link.publish(topic, payload, qos, retain) if self.link else False
+
+    # -- the worker ---------------------------------------------------------------------
+    def _worker(self) -> None:
+        try:
+            while not self.flags.stop:
+                for item in self.inbound.get_many(BATCH, timeout=0.2):
+                    self._handle_one(item)
+                    if self.flags.stop:
+                        break
+                self._between_messages()
+        except Exception as exc:  # the one catch-all: log it, still try to shut down cleanly
+            self.log("error", "worker_failed", error=f"{type(exc).__name__}: {exc}")
+            self.exit_code = 1
+        finally:
+            self._shutdown()
+
+    def _handle_one(self, item: Inbound) -> None:
+        try:
+            self.engine.handle(item.topic, item.payload, item.arrival_t)
+        except Exception as exc:  # per-message catch: count, log, go on
+            self.metrics.rejected("internal_error", None)
+            self.engine.say_once("error", "message_failed", ("internal", type(exc).__name__),
+                                 topic=item.topic, error=f"{type(exc).__name__}: {exc}")
+
+    def _between_messages(self) -> None:
+        self.engine.tick(self.clock())
+        if self.control is not None:
+            self.control.drain(self._control)
+        if self.flags.reload:
+            self.flags.reload = False
+            self._reload()
+        self._update_transport_metrics()
+        self._notify_ready_and_ping()
+
+    def _notify_ready_and_ping(self) -> None:
+        if not self._ready and (self.link.connected or
+                                time.monotonic() - self._started > READY_WITHOUT_BROKER_S):
+            self._ready = True
+            self.engine.publish_model_info()
+            sdnotify.notify("READY=1\nSTATUS=" + ("connected to broker" if self.link.connected
+                                                 else "broker not reachable yet; retrying"), self.env)
+            self.log("info", "ready", broker_connected=self.link.connected)
+        now = time.monotonic()
+        if self._watchdog_s and now - self._last_ping >= self._watchdog_s / 2:
+            self._last_ping = now
+            sdnotify.notify("WATCHDOG=1", self.env)
+
+    def _update_transport_metrics(self) -> None:
+        self.metrics.transport(queue_depth=self.inbound.depth, queue_dropped=self.inbound.dropped,
+                               connected=self.link.connected, reconnects=self.link.reconnects,
+                               publish_dropped=self.link.publish_dropped)
+
+    def _reload(self) -> None:
+        sdnotify.notify(f"RELOADING=1\nMONOTONIC_USEC={time.monotonic_ns() // 1000}", self.env)
+        try:
+            new = load_config(self.config_path)
+        except ConfigError as exc:
+            self.log("error", "reload_refused", reason="invalid config; running config kept",
+                     problems=len(exc.problems), first=exc.problems[0] if exc.problems else "")
+            self.metrics.reload("invalid")
+        else:
+            changes = diff_settings(self.engine.settings, new)
+            refusals = self.engine.apply_settings(new)
+            self.log.set_level(self.engine.settings.logging.level)
+            for line in changes:
+                self.log("info", "reload_change", change=line)
+            for line in refusals:
+                self.log("warning", "reload_refused_part", detail=line)
+            self.metrics.reload("partial" if refusals else "applied")
+            self.log("info", "reloaded", changes=len(changes), refused=len(refusals))
+        sdnotify.notify("READY=1", self.env)
+
+    def _shutdown(self) -> None:
+        sdnotify.notify("STOPPING=1", self.env)
+        self.log("info", "stopping")
+        self.engine.checkpoint_all("shutdown")
+        if self.link is not None:
+            self.link.stop(timeout=min(2.0, STOP_DEADLINE_S))
+        if self.control is not None:
+            self.control.close()
+        if self.http is not None:
+            try:
+                self.http.shutdown()
+            except Exception:
+                pass
+        self.log("info", "stopped", exit_code=self.exit_code)
+
+    # -- control requests (run on the worker, between messages) ------------------------------
+    def _control(self, req: dict) -> object:
+        cmd = req["cmd"]
+        if cmd == "status":
+            st = self.engine.status()
+            st.update(pid=os.getpid(), broker_connected=self.link.connected,
+                      queue_depth=self.inbound.depth, queue_dropped=self.inbound.dropped,
+                      config=os.path.abspath(self.config_path))
+            return st
+        if cmd == "rollback":
+            return {"model": req["model"], "checkpoint": self.engine.rollback(req["model"], req["to"])}
+        if cmd in ("pin", "unpin"):
+            rt = self.engine._model(req["model"])
+            (rt.store.pin if cmd == "pin" else rt.store.unpin)(req["id"])
+            return {"model": req["model"], "id": req["id"], "pinned": cmd == "pin"}
+        if cmd == "save-now":
+            names = [req["model"]] if req.get("model") else list(self.engine.models)
+            ids = {}
+            for name in names:
+                rt = self.engine._model(name)
+                ids[name] = self.engine.checkpoint_model(rt, "operator")
+                if ids[name] is None:
+                    raise CheckpointError(f"saving {name!r} failed; see the daemon log")
+            return ids
+        if cmd == "checkpoints":
+            return {name: rt.checkpoint_id for name, rt in self.engine.models.items()}
+        raise ControlError(f"unknown command {cmd!r}")
+
+
+def run_service(config_path: str, log: Log) -> int:
+    """Load the config and serve; exit code 2 for bad config, 1 for a runtime failure."""
+    try:
+        settings = load_config(config_path)
+    except ConfigError as exc:
+        log("error", "config_invalid", path=config_path, problems=len(exc.problems))
+        for p in exc.problems:
+            log("error", "config_problem", detail=p)
+        return 2
+    log.set_level(settings.logging.level)
+    try:
+        return Service(config_path, settings, log).run()
+    except ConfigError as exc:
+        for p in exc.problems:
+            log("error", "config_problem", detail=p)
+        return 2
+    except (EdgepropError, OSError) as exc:
+        log("error", "start_failed", error=str(exc))
+        return 1

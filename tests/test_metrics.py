@@ -1,0 +1,393 @@
+"""Metrics: values reach the scrape, labels stay config names, the endpoint guards itself."""
+from __future__ import annotations
+
+import base64
+import math
+import os
+import shutil
+import socket
+import ssl
+import statistics
+import subprocess
+import urllib.error
+import urllib.request
+
+import numpy as np
+import pytest
+from prometheus_client import REGISTRY, generate_latest
+from prometheus_client.parser import text_string_to_metric_families
+from sklearn.metrics import accuracy_score, log_loss, mean_squared_error
+
+from daemon.errors import ConfigError, EdgepropError
+from daemon.metrics import Metrics, parse_listen, serve
+from daemon.settings import MetricsAuth, MetricsSettings, MetricsTls
+
+IN_CI = os.environ.get("CI", "").lower() in ("1", "true", "yes")
+TOPICS = ("site/p1/bearing_temp", "site/p1/speed", "site/p1/current")
+
+
+def samples(metrics: Metrics) -> dict[tuple[str, frozenset], float]:
+    """Scrape a registry the way Prometheus would and index the samples by name and labels."""
+    text = generate_latest(metrics.registry).decode()
+    return {(s.name, frozenset(s.labels.items())): s.value
+            for fam in text_string_to_metric_families(text) for s in fam.samples}
+
+
+def value(scrape: dict, name: str, **labels: str) -> float:
+    return scrape[(name, frozenset(labels.items()))]
+
+
+@pytest.fixture()
+def pump() -> Metrics:
+    m = Metrics(node="station-7", queue_capacity=100, residual_window=8, refresh_every=4,
+                loss_short_span=2, loss_long_span=10, clock=lambda: 1_733_000_000.0)
+    m.register_model("bearing_temp", "4-32x32-1 tanh", ["speed", "current"], coverage=0.9)
+    return m
+
+
+def test_worker_calls_reach_the_scrape(pump: Metrics) -> None:
+    mm = pump.model("bearing_temp")
+    for _ in range(3):
+        pump.message_received()
+    pump.message_rejected("undecodable")
+    pump.inbound_dropped()
+    pump.queue_depth(7)
+    pump.observe_processing(3e-4)
+    pump.broker_connected(True)
+    pump.broker_reconnected()
+    pump.config_reloaded("applied")
+    mm.published(61.0, 59.5, 62.5)
+    mm.outcome(61.9, 61.0, 0.4, 59.5, 62.5)
+    mm.trained(2, 0.01, 3.5, 0.25)
+    mm.skipped("stale_input")
+    mm.input_shift("speed", 1.5)
+    mm.input_shift_event("current")
+    mm.loss_drift(0.7)
+    mm.loss_drift_event()
+    mm.drift_active(True)
+    mm.checkpoint_saved("20261201T101500Z-000042", 1_733_000_100.0)
+    mm.rolled_back("guard", "20261201T100000Z-000041")
+    mm.guard_tripped("blowup")
+    s = samples(pump)
+    assert value(s, "edgeprop_messages_received_total") == 3
+    assert value(s, "edgeprop_messages_rejected_total", reason="undecodable") == 1
+    assert value(s, "edgeprop_inbound_dropped_total") == 1
+    assert value(s, "edgeprop_inbound_queue_depth") == 7
+    assert value(s, "edgeprop_inbound_queue_capacity") == 100
+    assert value(s, "edgeprop_message_processing_seconds_bucket", le="0.0005") == 1
+    assert value(s, "edgeprop_message_processing_seconds_bucket", le="0.0002") == 0
+    assert value(s, "edgeprop_broker_connected") == 1
+    assert value(s, "edgeprop_broker_reconnects_total") == 1
+    assert value(s, "edgeprop_config_reloads_total", result="applied") == 1
+    assert value(s, "edgeprop_config_reloads_total", result="invalid") == 0
+    assert value(s, "edgeprop_start_time_seconds") == 1_733_000_000.0
+    b = dict(model="bearing_temp")
+    assert value(s, "edgeprop_predictions_published_total", **b) == 1
+    assert value(s, "edgeprop_samples_total", **b) == 1
+    assert value(s, "edgeprop_training_steps_total", **b) == 2
+    assert value(s, "edgeprop_samples_skipped_total", reason="stale_input", **b) == 1
+    assert value(s, "edgeprop_last_measured", **b) == 61.9
+    assert value(s, "edgeprop_last_predicted", **b) == 61.0
+    assert value(s, "edgeprop_last_residual", **b) == pytest.approx(0.9)
+    assert value(s, "edgeprop_last_interval_low", **b) == 59.5
+    assert value(s, "edgeprop_last_interval_high", **b) == 62.5
+    assert value(s, "edgeprop_learning_rate", **b) == 0.01
+    assert value(s, "edgeprop_weight_norm", **b) == 3.5
+    assert value(s, "edgeprop_gradient_norm", **b) == 0.25
+    assert value(s, "edgeprop_input_shift_score", input="speed", **b) == 1.5
+    assert value(s, "edgeprop_input_shift_events_total", input="current", **b) == 1
+    assert value(s, "edgeprop_input_shift_events_total", input="speed", **b) == 0
+    assert value(s, "edgeprop_loss_drift_score", **b) == 0.7
+    assert value(s, "edgeprop_loss_drift_events_total", **b) == 1
+    assert value(s, "edgeprop_drift_active", **b) == 1
+    assert value(s, "edgeprop_checkpoint_last_success_timestamp_seconds", **b) == 1_733_000_100
+    assert value(s, "edgeprop_rollbacks_total", cause="guard", **b) == 1
+    assert value(s, "edgeprop_rollbacks_total", cause="operator", **b) == 0
+    assert value(s, "edgeprop_guard_trips_total", reason="blowup", **b) == 1
+    assert value(s, "edgeprop_interval_coverage_ratio", **b) == 1.0
+    assert value(s, "edgeprop_interval_coverage_target_ratio", **b) == 0.9
+    assert value(s, "edgeprop_build_info", node="station-7", version="0.1.0",
+                 python=__import__("platform").python_version()) == 1
+
+
+def test_unknown_values_are_gaps_not_zeros(pump: Metrics) -> None:
+    s = samples(pump)
+    for name in ("edgeprop_rmse", "edgeprop_learning_rate", "edgeprop_last_predicted",
+                 "edgeprop_interval_coverage_ratio"):
+        assert math.isnan(value(s, name, model="bearing_temp")), name
+    assert math.isnan(value(s, "edgeprop_prequential_loss", model="bearing_temp", window="long"))
+
+
+def test_windowed_regression_statistics_match_outside_formulas() -> None:
+    rng = np.random.default_rng(3)
+    m = Metrics(residual_window=50, refresh_every=1)
+    mm = m.register_model("flow", "3-8-1 tanh", ["speed"])
+    measured = rng.normal(40.0, 2.0, 80)
+    predicted = measured + rng.normal(0.0, 0.5, 80)
+    for y, p in zip(measured, predicted):
+        mm.outcome(float(y), float(p), 0.1, float(p) - 0.6, float(p) + 0.6)
+    y, p = measured[-50:], predicted[-50:]           # only the last window counts
+    s = samples(m)
+    # scikit-learn's mean_squared_error, square-rooted.
+    assert value(s, "edgeprop_rmse", model="flow") == pytest.approx(
+        math.sqrt(mean_squared_error(y, p)), rel=1e-12)
+    # Python's statistics.quantiles, method="inclusive" (Hyndman & Fan type 7).
+    cuts = statistics.quantiles((y - p).tolist(), n=100, method="inclusive")
+    for pct in (5, 25, 50, 75, 95):
+        assert value(s, "edgeprop_residual_percentile", model="flow",
+                     percentile=str(pct)) == pytest.approx(cuts[pct - 1], rel=1e-9)
+    inside = np.abs(y - p) <= 0.6
+    assert value(s, "edgeprop_interval_coverage_ratio", model="flow") == pytest.approx(
+        inside.mean())
+
+
+def test_windowed_binary_statistics_match_scikit_learn() -> None:
+    m = Metrics(residual_window=100, refresh_every=1)
+    mm = m.register_model("seal_leak", "3-16-1 relu", ["flow"], task="binary")
+    truth = [1, 0, 1, 1, 0, 0, 1, 0]
+    prob = [0.9, 0.2, 0.4, 1.0, 0.0, 0.7, 0.0, 0.5]   # includes 0 and 1: clipping matters
+    for y, p in zip(truth, prob):
+        mm.outcome(float(y), p, 0.2)
+    s = samples(m)
+    assert value(s, "edgeprop_log_loss", model="seal_leak") == pytest.approx(
+        log_loss(truth, prob, labels=[0, 1]), rel=1e-9)
+    assert value(s, "edgeprop_accuracy_ratio", model="seal_leak") == pytest.approx(
+        accuracy_score(truth, [int(p >= 0.5) for p in prob]))
+    assert ("edgeprop_rmse", frozenset({("model", "seal_leak")})) not in s
+
+
+def test_loss_averages_follow_the_ewma_recurrence(pump: Metrics) -> None:
+    mm = pump.model("bearing_temp")
+    losses = [1.0, 3.0, float("nan"), 2.0, 8.0, float("inf"), 0.5, 4.0]
+    for loss in losses:
+        mm.outcome(1.0, 0.0, loss)
+    mm.flush()
+    # EWMA_t = lambda * x_t + (1 - lambda) * EWMA_{t-1}: NIST/SEMATECH e-Handbook of Statistical
+    # Methods, 6.3.2.4 (recalled from memory); seeded with the first value, non-finite skipped.
+    finite = [x for x in losses if math.isfinite(x)]
+    expect = {}
+    for window, lam in (("short", 1 / 2), ("long", 1 / 10)):
+        e = finite[0]
+        for x in finite[1:]:
+            e = lam * x + (1 - lam) * e
+        expect[window] = e
+    s = samples(pump)
+    for window, e in expect.items():
+        assert value(s, "edgeprop_prequential_loss", model="bearing_temp",
+                     window=window) == pytest.approx(e)
+
+
+def test_windowed_gauges_refresh_on_the_cadence(pump: Metrics) -> None:
+    mm = pump.model("bearing_temp")            # refresh_every=4
+    mm.outcome(2.0, 0.0, 0.1)                  # the first outcome refreshes at once
+    assert value(samples(pump), "edgeprop_rmse", model="bearing_temp") == 2.0
+    for _ in range(3):
+        mm.outcome(4.0, 0.0, 0.1)
+    assert value(samples(pump), "edgeprop_rmse", model="bearing_temp") == 2.0
+    mm.outcome(4.0, 0.0, 0.1)
+    assert value(samples(pump), "edgeprop_rmse", model="bearing_temp") == pytest.approx(
+        math.sqrt((4 + 4 * 16) / 5))
+
+
+def test_labels_carry_names_never_topics_or_values(pump: Metrics) -> None:
+    mm = pump.model("bearing_temp")
+    pump.message_rejected(TOPICS[1])           # a caller mistake must not leak the topic
+    pump.message_rejected("value 61.9")
+    mm.skipped("site/p1/current")
+    for i in range(40):                        # a flood of distinct codes folds into "other"
+        pump.message_rejected(f"code_{i}")
+    text = generate_latest(pump.registry).decode()
+    values = {v for fam in text_string_to_metric_families(text) for smp in fam.samples
+              for k, v in smp.labels.items() if k not in ("le", "python")}
+    assert not any("/" in v or v in TOPICS or "61.9" in v for v in values)
+    rejected = {dict(k[1])["reason"] for k in samples(pump)
+                if k[0] == "edgeprop_messages_rejected_total"}
+    assert "other" in rejected and len(rejected) <= 33
+
+
+def test_model_info_keeps_one_series_per_model(pump: Metrics) -> None:
+    mm = pump.model("bearing_temp")
+    mm.checkpoint_saved("20261201T101500Z-000042", 1.0)
+    mm.checkpoint_saved("20261201T102000Z-000043", 2.0)
+    infos = [dict(k[1]) for k in samples(pump) if k[0] == "edgeprop_model_info"]
+    assert infos == [{"model": "bearing_temp", "checkpoint": "20261201T102000Z-000043",
+                      "architecture": "4-32x32-1 tanh", "task": "regression"}]
+
+
+def test_mistakes_name_what_is_allowed(pump: Metrics) -> None:
+    mm = pump.model("bearing_temp")
+    with pytest.raises(ValueError, match="operator, guard, drift"):
+        mm.rolled_back("whim", "x")
+    with pytest.raises(ValueError, match="applied, invalid, partial"):
+        pump.config_reloaded("maybe")
+    with pytest.raises(ValueError, match="'current', 'speed'"):
+        mm.input_shift("torque", 1.0)
+    with pytest.raises(ValueError, match="already registered"):
+        pump.register_model("bearing_temp", "x", [])
+    with pytest.raises(ValueError, match="registered: \\['bearing_temp'\\]"):
+        pump.model("flow")
+
+
+def test_each_metrics_object_has_its_own_registry() -> None:
+    a, b = Metrics(), Metrics()
+    a.message_received()
+    assert value(samples(b), "edgeprop_messages_received_total") == 0
+    assert b"edgeprop_" not in generate_latest(REGISTRY)
+
+
+@pytest.mark.parametrize("text, host, port", [
+    ("127.0.0.1:9740", "127.0.0.1", 9740), ("[::1]:0", "::1", 0),
+    ("gateway.local:80", "gateway.local", 80)])
+def test_parse_listen_accepts_host_port(text: str, host: str, port: int) -> None:
+    assert parse_listen(text) == (host, port)
+
+
+@pytest.mark.parametrize("text", ["9740", ":9740", "127.0.0.1:99999", "::1:9740", "a b:1"])
+def test_parse_listen_names_the_key(text: str) -> None:
+    with pytest.raises(ConfigError, match="metrics.listen"):
+        parse_listen(text)
+
+
+# --- the endpoint ---------------------------------------------------------------------------
+
+def get(url: str, auth: tuple[str, str] | None = None, context: ssl.SSLContext | None = None
+        ) -> tuple[int, str]:
+    req = urllib.request.Request(url)
+    if auth:
+        req.add_header("Authorization",
+                       "Basic " + base64.b64encode(":".join(auth).encode()).decode())
+    try:
+        with urllib.request.urlopen(req, timeout=5, context=context) as resp:
+            return resp.status, resp.read().decode()
+    except urllib.error.HTTPError as e:
+        assert e.code != 401 or "Basic" in e.headers.get("WWW-Authenticate", "")
+        return e.code, ""
+
+
+def test_no_listen_means_no_server() -> None:
+    assert serve(MetricsSettings(listen=None), Metrics().registry) is None
+
+
+def test_default_binds_loopback_only(pump: Metrics) -> None:
+    assert parse_listen(MetricsSettings().listen)[0] == "127.0.0.1"
+    server = serve(MetricsSettings(listen="127.0.0.1:0"), pump.registry)
+    try:
+        assert server.host == "127.0.0.1" and server.port > 0
+        status, body = get(server.url)
+        assert status == 200 and "edgeprop_build_info{" in body
+        other = _non_loopback_address()
+        if other:                              # the same port on the LAN address is shut
+            with pytest.raises(OSError):
+                socket.create_connection((other, server.port), timeout=2).close()
+    finally:
+        server.close()
+
+
+def _non_loopback_address() -> str | None:
+    with socket.socket(socket.AF_INET, socket.SOCK_DGRAM) as s:
+        try:
+            s.connect(("192.0.2.1", 9))        # TEST-NET-1: no packet is sent for UDP connect
+            addr = s.getsockname()[0]
+        except OSError:
+            return None
+    return None if addr.startswith("127.") else addr
+
+
+def test_ipv6_loopback(pump: Metrics) -> None:
+    try:
+        socket.socket(socket.AF_INET6).bind(("::1", 0))
+    except OSError:
+        pytest.skip("no IPv6 loopback on this machine")
+    server = serve(MetricsSettings(listen="[::1]:0"), pump.registry)
+    try:
+        assert server.url.startswith("http://[::1]:")
+        assert get(server.url)[0] == 200
+    finally:
+        server.close()
+
+
+def test_busy_port_is_a_clear_error(pump: Metrics) -> None:
+    first = serve(MetricsSettings(listen="127.0.0.1:0"), pump.registry)
+    try:
+        with pytest.raises(EdgepropError, match="metrics.listen.*cannot listen"):
+            serve(MetricsSettings(listen=f"127.0.0.1:{first.port}"), pump.registry)
+    finally:
+        first.close()
+
+
+@pytest.fixture()
+def password_file(tmp_path) -> str:
+    path = tmp_path / "scrape.pw"
+    path.write_text("s3cret-pump\n")
+    path.chmod(0o600)
+    return str(path)
+
+
+def test_basic_auth_wants_the_right_credentials(pump: Metrics, password_file: str) -> None:
+    settings = MetricsSettings(listen="127.0.0.1:0",
+                               basic_auth=MetricsAuth("prometheus", password_file))
+    server = serve(settings, pump.registry)
+    try:
+        assert get(server.url)[0] == 401
+        assert get(server.url, ("prometheus", "wrong"))[0] == 401
+        assert get(server.url, ("grafana", "s3cret-pump"))[0] == 401
+        assert get(server.url, ("prometheus", "s3cret-pump\n"))[0] == 401
+        status, body = get(server.url, ("prometheus", "s3cret-pump"))
+        assert status == 200 and "edgeprop_messages_received_total" in body
+    finally:
+        server.close()
+
+
+def test_password_file_must_be_private_and_non_empty(pump: Metrics, tmp_path) -> None:
+    loose = tmp_path / "loose.pw"
+    loose.write_text("x\n")
+    loose.chmod(0o644)
+    empty = tmp_path / "empty.pw"
+    empty.write_text("")
+    empty.chmod(0o600)
+    for path, why in ((loose, "group/others"), (empty, "empty"),
+                      (tmp_path / "absent.pw", "cannot read")):
+        with pytest.raises(ConfigError, match=f"metrics.basic_auth.password_file.*{why}"):
+            serve(MetricsSettings("127.0.0.1:0", basic_auth=MetricsAuth("p", str(path))),
+                  pump.registry)
+
+
+@pytest.fixture(scope="module")
+def self_signed(tmp_path_factory) -> tuple[str, str]:
+    if shutil.which("openssl") is None:
+        if IN_CI:
+            pytest.fail("openssl is required in CI for the TLS tests")
+        pytest.skip("openssl not installed")
+    d = tmp_path_factory.mktemp("tls")
+    cert, key = str(d / "cert.pem"), str(d / "key.pem")
+    subprocess.run(["openssl", "req", "-x509", "-newkey", "ec", "-pkeyopt",
+                    "ec_paramgen_curve:prime256v1", "-nodes", "-keyout", key, "-out", cert,
+                    "-days", "2", "-subj", "/CN=edgeprop-test",
+                    "-addext", "subjectAltName=IP:127.0.0.1"],
+                   check=True, capture_output=True)
+    return cert, key
+
+
+@pytest.mark.parametrize("with_auth", [False, True])
+def test_tls_serves_https_only(pump: Metrics, self_signed, password_file: str,
+                               with_auth: bool) -> None:
+    cert, key = self_signed
+    auth = MetricsAuth("prometheus", password_file) if with_auth else None
+    server = serve(MetricsSettings("127.0.0.1:0", MetricsTls(cert, key), auth), pump.registry)
+    try:
+        assert server.url.startswith("https://127.0.0.1:")
+        trust = ssl.create_default_context(cafile=cert)
+        status, body = get(server.url, ("prometheus", "s3cret-pump"), context=trust)
+        assert status == 200 and "edgeprop_build_info" in body
+        if with_auth:
+            assert get(server.url, context=trust)[0] == 401
+        with pytest.raises((urllib.error.URLError, ConnectionError, OSError)):
+            get(server.url.replace("https://", "http://"))
+    finally:
+        server.close()
+
+
+def test_unreadable_tls_files_name_the_key(pump: Metrics, tmp_path) -> None:
+    bad = MetricsTls(str(tmp_path / "no-cert.pem"), str(tmp_path / "no-key.pem"))
+    with pytest.raises(ConfigError, match="metrics.tls"):
+        serve(MetricsSettings("127.0.0.1:0", tls=bad), pump.registry)
