@@ -1,25 +1,22 @@
 """Drift detection on the loss stream and on each input, and the response it calls for.
 
-What the loss detectors watch. The per-sample loss of a standardised target is
-heavy-tailed (squared loss of a Gaussian residual is chi-square with one degree
-of freedom: mean 1, spread 1.4) and its level depends on how good the model has
-become. Fed raw to Page-Hinkley with the customary allowance 0.005 and alarm
-level 50, such a stream raises a false alarm every few thousand samples; ADWIN's
-bound assumes values in [0, 1]. So both detectors watch the *relative loss*
+What the loss detectors watch: the per-sample loss of a standardised target is
+heavy-tailed (squared loss of a Gaussian residual is chi-square(1): mean 1,
+spread 1.4) and its level falls as the model learns. Fed raw to Page-Hinkley at
+the defaults (allowance 0.005, alarm level 50) it gave 71 false alarms per
+100,000 stationary samples (|residual| still gave 7), and ADWIN's bound assumes
+values in [0, 1]. So both detectors watch the *relative loss*
 
     u = min(loss / (4 * reference), 1)
 
-where ``reference`` is the loss level the model has been achieving (a running
-mean over its first samples, then an exponentially weighted mean with a time
-constant of ``LOSS_REFERENCE_SAMPLES``, updated with the loss clipped at 4x the
-reference so one outlier cannot move it). The factor 4 is the 2-sigma point of
-a squared Gaussian residual. ``u`` is unit-free (any sensor, squared or Huber
-or logistic loss), bounded in [0, 1] as ADWIN's bound requires, and has a
-spread (about 0.28 for Gaussian residuals) small enough that the settings'
-defaults keep false alarms near zero while a 3-sigma residual step lifts its
-mean by about 0.7 (detected in well under 100 samples). Measured figures are in
-``tests/bench_detectors.py``. Only *increases* of the loss raise an alarm: a
-model that gets better is not drift.
+``reference`` is the loss level the model has been achieving: a running mean over
+its first samples, then an exponentially weighted mean (time constant
+``LOSS_REFERENCE_SAMPLES``) of the loss clipped at 4x the reference, so one outlier
+cannot move it; 4 is the 2-sigma point of a squared Gaussian residual. ``u`` is
+unit-free (any sensor; squared, Huber or logistic loss), lies in [0, 1] and spreads
+little (~0.28 for Gaussian residuals): at the defaults false alarms stay near zero
+while a 3-sigma residual step lifts its mean by ~0.7 and is found within 100 samples
+(tests/bench_detectors.py). Only *increases* alarm: a model getting better is not drift.
 
 Inputs: per input, the mean of the newest ``input_recent`` raw values against a
 reference mean, in units of the reference spread (both from the first
@@ -29,7 +26,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass
-from typing import Optional, Union
+from typing import Iterator, Optional, Union
 
 import numpy as np
 
@@ -38,6 +35,7 @@ from .settings import DriftSettings
 LARGE_LOSS = 4.0                # loss ratio mapped to u = 1; 2-sigma of a squared Gaussian residual
 LOSS_REFERENCE_SAMPLES = 1000   # time constant of the loss reference (common practice, no source)
 LOSS_FLOOR = 1e-9               # reference floor for a perfect fit (common practice, no source)
+CHANGE_SEARCH = 2048            # newest u values searched for the change point
 ADWIN_BUCKETS = 5               # buckets per size class, "M" in Bifet & Gavalda 2007
 ADWIN_CHECK_EVERY = 16          # samples between cut checks (pure-Python cost; see Adwin)
 ADWIN_MIN_SIDE = 5              # fewest samples on either side of a cut (common practice, no source)
@@ -49,17 +47,24 @@ def _scalar(arrays: dict[str, np.ndarray], key: str) -> float:
     return float(np.asarray(arrays[key]))
 
 
+def _arrays(**values: object) -> dict[str, np.ndarray]:
+    return {k: np.asarray(v) for k, v in values.items()}
+
+
+def _part(prefix: str, arrays: dict[str, np.ndarray]) -> dict[str, np.ndarray]:
+    return {k[len(prefix):]: v for k, v in arrays.items() if k.startswith(prefix)}
+
+
 class PageHinkley:
     """Page-Hinkley test for an increase of the mean (Page 1954, Hinkley's cumulative form).
 
-    m_t = sum_{i<=t} (x_i - mean_t - delta), alarm when m_t - min_{s<=t} m_s > threshold.
-    After an alarm it starts afresh; ``since_change`` keeps the estimated change age
-    (samples since the minimum of m_t, the classic change-point estimate).
+    m_t = sum_{i<=t} (x_i - mean_t - delta), alarm when m_t - min(0, m_1..m_t) > threshold,
+    mean_t being the running mean up to and including x_t. Starts afresh after an alarm.
     """
 
     def __init__(self, delta: float = 0.005, threshold: float = 50.0, min_samples: int = 30) -> None:
         self.delta, self.threshold, self.min_samples = float(delta), float(threshold), int(min_samples)
-        self.since_change, self.alarm_score = 0, 0.0
+        self.alarm_score = 0.0
         self.reset()
 
     def __repr__(self) -> str:
@@ -67,7 +72,7 @@ class PageHinkley:
 
     def reset(self) -> None:
         """Forget everything seen so far."""
-        self.n, self.mean, self.cum, self.low, self.low_at = 0, 0.0, 0.0, 0.0, 0
+        self.n, self.mean, self.cum, self.low = 0, 0.0, 0.0, 0.0
 
     @property
     def score(self) -> float:
@@ -79,25 +84,21 @@ class PageHinkley:
         self.n += 1
         self.mean += (x - self.mean) / self.n
         self.cum += x - self.mean - self.delta
-        if self.cum < self.low:
-            self.low, self.low_at = self.cum, self.n
+        self.low = min(self.low, self.cum)
         if self.n >= self.min_samples and self.cum - self.low > self.threshold:
-            self.since_change, self.alarm_score = self.n - self.low_at, self.score
+            self.alarm_score = self.score
             self.reset()
             return True
         return False
 
     def state(self) -> dict[str, np.ndarray]:
         """Plain arrays for a checkpoint."""
-        return {"n": np.asarray(self.n), "mean": np.asarray(self.mean), "cum": np.asarray(self.cum),
-                "low": np.asarray(self.low), "low_at": np.asarray(self.low_at),
-                "since": np.asarray(self.since_change)}
+        return _arrays(n=self.n, mean=self.mean, cum=self.cum, low=self.low)
 
     def load_state(self, arrays: dict[str, np.ndarray]) -> None:
         """Restore from ``state`` output."""
-        self.n, self.low_at = int(arrays["n"]), int(arrays["low_at"])
+        self.n = int(arrays["n"])
         self.mean, self.cum, self.low = (_scalar(arrays, k) for k in ("mean", "cum", "low"))
-        self.since_change = int(arrays["since"])
 
 
 class Adwin:
@@ -110,19 +111,19 @@ class Adwin:
         eps = sqrt(2/m * var_W * ln(2/d)) + 2/(3m) * ln(2/d),  m = 1/(1/n0 + 1/n1),
         d = confidence / ln(W)
 
-    (the paper's normal-approximation bound; d = delta/ln W is from memory of the
-    same paper). The oldest bucket is dropped until no cut remains. Cuts are only
-    looked for every ``ADWIN_CHECK_EVERY`` samples: checking every sample in pure
-    Python costs ~50 us, which 100,000-sample tests cannot afford; the price is up to
-    that many samples of extra delay. A cut where the newer part is *higher* is an
-    alarm; a cut where it is lower just shrinks the window. Values should lie in [0, 1].
+    (the paper's normal-approximation bound; d = delta/ln W is from memory of the same
+    paper), dropping the oldest bucket until no cut remains. A check walks every bucket
+    in pure Python (~20 us at W = 100,000, measured), ten times the rest of an update,
+    so it runs every ``ADWIN_CHECK_EVERY`` samples: up to that many samples of extra
+    delay. A cut with a *higher* newer part is an alarm, after which the window starts
+    afresh (as Page-Hinkley does); a lower newer part just shrinks the window.
     """
 
     def __init__(self, confidence: float = 0.002, min_samples: int = 30,
                  check_every: int = ADWIN_CHECK_EVERY) -> None:
         self.confidence, self.min_samples = float(confidence), int(min_samples)
         self.check_every = int(check_every)
-        self.since_change, self.alarm_score = 0, 0.0
+        self.alarm_score = 0.0
         self.reset()
 
     def __repr__(self) -> str:
@@ -190,55 +191,55 @@ class Adwin:
             top -= 1
 
     def _check(self) -> bool:
-        alarm = False
         while True:
-            cut, gap = self._find_cut()
+            best, cut = self._scan()
+            if best > 1.0:
+                self.alarm_score = best
+                self.reset()
+                return True
             if not cut:
-                return alarm
-            if gap > 0 and not alarm:
-                alarm, self.alarm_score = True, self._score
+                return False
             self._drop_oldest()
-            if alarm:
-                self.since_change = self.width
 
-    def _find_cut(self) -> tuple[bool, float]:
+    def _oldest_first(self) -> Iterator[tuple[int, float]]:
+        for level in range(len(self.sums) - 1, -1, -1):
+            for s in self.sums[level]:
+                yield 1 << level, s
+
+    def _scan(self) -> tuple[float, bool]:
+        """Largest (newer - older) mean gap over its bound, and whether any split is significant."""
         w, total = self.width, self.total
+        best, cut = 0.0, False
         if w < 2 * ADWIN_MIN_SIDE:
-            return False, 0.0
+            self._score = best
+            return best, cut
         log_term = math.log(2.0 * math.log(w) / self.confidence)
         var = self.m2 / w
-        n0, s0, best = 0, 0.0, 0.0
-        for level in range(len(self.sums) - 1, -1, -1):
-            size = 1 << level
-            for s in self.sums[level]:
-                n0 += size
-                s0 += s
-                n1 = w - n0
-                if n0 < ADWIN_MIN_SIDE:
-                    continue
-                if n1 < ADWIN_MIN_SIDE:
-                    self._score = best
-                    return False, 0.0
-                gap = (total - s0) / n1 - s0 / n0
-                m = 1.0 / (1.0 / n0 + 1.0 / n1)
-                eps = math.sqrt(2.0 / m * var * log_term) + 2.0 / (3.0 * m) * log_term
-                best = max(best, gap / eps)
-                if abs(gap) > eps:
-                    self._score = best
-                    return True, gap
+        n0, s0 = 0, 0.0
+        for size, s in self._oldest_first():
+            n0 += size
+            s0 += s
+            n1 = w - n0
+            if n1 < ADWIN_MIN_SIDE:
+                break
+            if n0 < ADWIN_MIN_SIDE:
+                continue
+            gap = (total - s0) / n1 - s0 / n0
+            m = 1.0 / (1.0 / n0 + 1.0 / n1)
+            eps = math.sqrt(2.0 / m * var * log_term) + 2.0 / (3.0 * m) * log_term
+            best = max(best, gap / eps)
+            cut = cut or abs(gap) > eps
         self._score = best
-        return False, 0.0
+        return best, cut
 
     def state(self) -> dict[str, np.ndarray]:
         """Plain arrays for a checkpoint: buckets oldest first with their size class."""
-        levels = [lv for lv in range(len(self.sums) - 1, -1, -1) for _ in self.sums[lv]]
-        sums = [s for lv in range(len(self.sums) - 1, -1, -1) for s in self.sums[lv]]
-        m2s = [v for lv in range(len(self.m2s) - 1, -1, -1) for v in self.m2s[lv]]
-        return {"levels": np.asarray(levels, np.int64), "sums": np.asarray(sums, np.float64),
-                "m2s": np.asarray(m2s, np.float64), "width": np.asarray(self.width),
-                "total": np.asarray(self.total), "m2": np.asarray(self.m2),
-                "tick": np.asarray(self.tick), "score": np.asarray(self._score),
-                "since": np.asarray(self.since_change)}
+        order = range(len(self.sums) - 1, -1, -1)
+        return {"levels": np.asarray([lv for lv in order for _ in self.sums[lv]], np.int64),
+                "sums": np.asarray([s for lv in order for s in self.sums[lv]], np.float64),
+                "m2s": np.asarray([v for lv in order for v in self.m2s[lv]], np.float64),
+                **_arrays(width=self.width, total=self.total, m2=self.m2, tick=self.tick,
+                          score=self._score)}
 
     def load_state(self, arrays: dict[str, np.ndarray]) -> None:
         """Restore from ``state`` output."""
@@ -253,14 +254,12 @@ class Adwin:
             raise ValueError("ADWIN state: bucket sizes do not add up to the window width")
         self.width, self.tick = int(arrays["width"]), int(arrays["tick"])
         self.total, self.m2, self._score = (_scalar(arrays, k) for k in ("total", "m2", "score"))
-        self.since_change = int(arrays["since"])
 
 
 class NoDetector:
     """Stands in when ``detector: none``: watches nothing, never alarms."""
 
     score = alarm_score = 0.0
-    since_change = 0
 
     def update(self, x: float) -> bool:
         """Never alarms."""
@@ -270,6 +269,7 @@ class NoDetector:
         """Nothing to forget."""
 
     def state(self) -> dict[str, np.ndarray]:
+        """Nothing to save."""
         return {}
 
     def load_state(self, arrays: dict[str, np.ndarray]) -> None:
@@ -280,10 +280,11 @@ Detector = Union[PageHinkley, Adwin, NoDetector]
 
 
 class RelativeLoss:
-    """Turns the per-sample loss into u in [0, 1] against the level the model has been achieving."""
+    """The loss as the detectors see it (u in [0, 1], see the module notes), and where it changed."""
 
     def __init__(self, warmup: int, time_constant: int = LOSS_REFERENCE_SAMPLES) -> None:
         self.warmup, self.time_constant = max(int(warmup), 1), int(time_constant)
+        self.history = np.zeros(CHANGE_SEARCH)
         self.reset()
 
     def __repr__(self) -> str:
@@ -291,7 +292,7 @@ class RelativeLoss:
 
     def reset(self) -> None:
         """Start a new reference (after a drift is acted on)."""
-        self.n, self.reference = 0, 0.0
+        self.n, self.reference, self.kept = 0, 0.0, 0
 
     def update(self, loss: float) -> Optional[float]:
         """Relative loss of this sample, or None while the reference is forming."""
@@ -299,21 +300,50 @@ class RelativeLoss:
         if self.n >= self.warmup:
             u = min(loss / (LARGE_LOSS * self.reference), 1.0)
             loss = min(loss, LARGE_LOSS * self.reference)
+            self.history[self.kept % CHANGE_SEARCH] = u
+            self.kept += 1
         self.n += 1
         ref = self.reference + (loss - self.reference) / min(self.n, self.time_constant)
         self.reference = max(ref, LOSS_FLOOR)
         return u
 
+    def newest(self) -> np.ndarray:
+        """The kept u values (at most CHANGE_SEARCH), oldest first."""
+        if self.kept <= CHANGE_SEARCH:
+            return self.history[:self.kept].copy()
+        return np.roll(self.history, -(self.kept % CHANGE_SEARCH))
+
+    def change_age(self) -> int:
+        """Samples since the likeliest start of an increase of u: the split k maximising
+        C_k^2 / (k(n-k)/n), C_k = S_k - (k/n) S_n < 0, the maximum-likelihood change point
+        of a mean shift in Gaussian noise (Hinkley 1970, from memory)."""
+        u = self.newest()
+        n = u.size
+        if n < 2:
+            return n
+        k = np.arange(1, n)
+        c = np.cumsum(u)[:-1] - k / n * u.sum()
+        stat = np.where(c < 0, c * c / (k * (n - k) / n), -1.0)
+        return int(n - 1 - np.argmax(stat))
+
     def state(self) -> dict[str, np.ndarray]:
-        return {"n": np.asarray(self.n), "reference": np.asarray(self.reference)}
+        """Plain arrays for a checkpoint."""
+        return {**_arrays(n=self.n, reference=self.reference), "history": self.newest()}
 
     def load_state(self, arrays: dict[str, np.ndarray]) -> None:
         """Restore from ``state`` output."""
         self.n, self.reference = int(arrays["n"]), _scalar(arrays, "reference")
+        values = np.asarray(arrays["history"], np.float64).ravel()[-CHANGE_SEARCH:]
+        self.history = np.zeros(CHANGE_SEARCH)
+        self.history[:values.size] = values
+        self.kept = values.size
 
 
 class InputShift:
-    """Shift of one input's recent mean from its reference mean, in reference spreads."""
+    """Shift of one input's recent mean from its reference mean, in reference spreads.
+
+    Quiet until the reference (first ``reference`` values after a start or rebase) is complete.
+    """
 
     def __init__(self, reference: int = 500, recent: int = 50, threshold: float = 4.0) -> None:
         self.reference, self.recent, self.threshold = int(reference), int(recent), float(threshold)
@@ -325,9 +355,15 @@ class InputShift:
     def rebase(self) -> None:
         """Start a new reference from the next ``reference`` values."""
         self.ref_n, self.ref_mean, self.ref_m2 = 0, 0.0, 0.0
-        self.buf = [0.0] * self.recent
-        self.head, self.count, self.total = 0, 0, 0.0
+        self._fill([])
         self.score, self.above = 0.0, False
+
+    def _fill(self, values: list[float]) -> None:
+        values = values[len(values) - self.recent:] if len(values) > self.recent else values
+        self.buf = values + [0.0] * (self.recent - len(values))
+        self.count = len(values)
+        self.head = self.count % self.recent
+        self.total = math.fsum(values)
 
     @property
     def ready(self) -> bool:
@@ -354,7 +390,8 @@ class InputShift:
         if not self.ready:
             return False
         # a constant reference (a setpoint) gets a tiny spread, so any real move is a shift
-        spread = max(self.ref_std, 1e-9 * max(1.0, abs(self.ref_mean)))   # common practice, no source
+        # common practice, no source: a floor relative to the level
+        spread = max(self.ref_std, 1e-9 * max(1.0, abs(self.ref_mean)))
         self.score = abs(self.total / self.recent - self.ref_mean) / spread
         fired = self.score > self.threshold and not self.above
         self.above = self.score > self.threshold
@@ -362,12 +399,9 @@ class InputShift:
 
     def resize(self, reference: int, recent: int, threshold: float) -> None:
         """New sizes from a reload; keeps the reference and the newest recent values."""
-        values = self.newest()[-recent:]
+        values = self.newest()
         self.reference, self.recent, self.threshold = int(reference), int(recent), float(threshold)
-        self.buf = values + [0.0] * (self.recent - len(values))
-        self.count = len(values)
-        self.head = self.count % self.recent
-        self.total = math.fsum(values)
+        self._fill(values)
 
     def newest(self) -> list[float]:
         """The recent values, oldest first."""
@@ -376,20 +410,17 @@ class InputShift:
         return self.buf[self.head:] + self.buf[:self.head]
 
     def state(self) -> dict[str, np.ndarray]:
-        return {"ref_n": np.asarray(self.ref_n), "ref_mean": np.asarray(self.ref_mean),
-                "ref_m2": np.asarray(self.ref_m2), "recent": np.asarray(self.newest(), np.float64),
-                "score": np.asarray(self.score), "above": np.asarray(int(self.above))}
+        """Plain arrays for a checkpoint."""
+        return _arrays(ref_n=self.ref_n, ref_mean=self.ref_mean, ref_m2=self.ref_m2,
+                       recent=np.asarray(self.newest(), np.float64), score=self.score,
+                       above=int(self.above))
 
     def load_state(self, arrays: dict[str, np.ndarray]) -> None:
         """Restore from ``state`` output; a different ``recent`` size keeps the newest values."""
         self.ref_n = int(arrays["ref_n"])
         self.ref_mean, self.ref_m2 = _scalar(arrays, "ref_mean"), _scalar(arrays, "ref_m2")
         self.score, self.above = _scalar(arrays, "score"), bool(int(arrays["above"]))
-        values = [float(v) for v in np.asarray(arrays["recent"], np.float64).ravel()][-self.recent:]
-        self.buf = values + [0.0] * (self.recent - len(values))
-        self.count = len(values)
-        self.head = self.count % self.recent
-        self.total = math.fsum(values)
+        self._fill(np.asarray(arrays["recent"], np.float64).ravel().tolist())
 
 
 @dataclass(frozen=True)
@@ -493,7 +524,7 @@ class DriftMonitor:
         if math.isfinite(loss):
             u = self.relative.update(loss)
             if u is not None and self.detector.update(u):
-                event = DriftEvent("loss", float(self.detector.alarm_score), int(self.detector.since_change))
+                event = DriftEvent("loss", float(self.detector.alarm_score), self.relative.change_age())
         fired = []
         for name, shift, value in zip(self.input_names, self.inputs, x_raw):
             value = float(value)
@@ -519,14 +550,15 @@ class DriftMonitor:
 
     def apply_settings(self, new: DriftSettings) -> None:
         """Take reloaded settings, keeping every statistic that still means the same."""
-        action_for(new, None)                       # refuse an unknown on_drift before changing anything
+        action_for(new, None)          # refuse an unknown on_drift before changing anything
         if new.detector != self.settings.detector:
             self.detector = make_detector(new)
         elif isinstance(self.detector, PageHinkley):
             self.detector.delta, self.detector.threshold = float(new.delta), float(new.threshold)
             self.detector.min_samples = int(new.min_samples)
         elif isinstance(self.detector, Adwin):
-            self.detector.confidence, self.detector.min_samples = float(new.confidence), int(new.min_samples)
+            self.detector.confidence = float(new.confidence)
+            self.detector.min_samples = int(new.min_samples)
         self.relative.warmup = max(int(new.min_samples), 1)
         for shift in self.inputs:
             shift.resize(new.input_reference, new.input_recent, new.input_threshold)
@@ -536,12 +568,11 @@ class DriftMonitor:
 
     def state(self) -> dict[str, np.ndarray]:
         """Plain arrays for a checkpoint (keys without '/')."""
-        arrays = {"detector": np.asarray(DETECTORS.index(self.settings.detector)),
-                  "n_inputs": np.asarray(len(self.inputs)), "hold_left": np.asarray(self.hold_left),
-                  "boost_left": np.asarray(self.boost_left), "samples": np.asarray(self.samples),
-                  "events": np.asarray(self.events),
-                  "response": np.asarray([ACTIONS.index(self.response.kind), self.response.lr_factor,
-                                          self.response.samples], np.float64)}
+        r = self.response
+        arrays = _arrays(detector=DETECTORS.index(self.settings.detector), n_inputs=len(self.inputs),
+                         hold_left=self.hold_left, boost_left=self.boost_left, samples=self.samples,
+                         events=self.events,
+                         response=np.asarray([ACTIONS.index(r.kind), r.lr_factor, r.samples], np.float64))
         arrays.update({f"det.{k}": v for k, v in self.detector.state().items()})
         arrays.update({f"rel.{k}": v for k, v in self.relative.state().items()})
         for i, shift in enumerate(self.inputs):
@@ -554,11 +585,10 @@ class DriftMonitor:
         if n != len(self.inputs):
             raise ValueError(f"drift state has {n} inputs, the model has {len(self.inputs)}")
         if int(arrays["detector"]) == DETECTORS.index(self.settings.detector):
-            self.detector.load_state({k[4:]: v for k, v in arrays.items() if k.startswith("det.")})
-        self.relative.load_state({k[4:]: v for k, v in arrays.items() if k.startswith("rel.")})
+            self.detector.load_state(_part("det.", arrays))
+        self.relative.load_state(_part("rel.", arrays))
         for i, shift in enumerate(self.inputs):
-            p = f"in{i}."
-            shift.load_state({k[len(p):]: v for k, v in arrays.items() if k.startswith(p)})
+            shift.load_state(_part(f"in{i}.", arrays))
         kind, factor, samples = np.asarray(arrays["response"], np.float64).tolist()
         self.response = DriftAction(ACTIONS[int(kind)], float(factor), int(samples))
         self.hold_left, self.boost_left = int(arrays["hold_left"]), int(arrays["boost_left"])

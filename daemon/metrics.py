@@ -1,38 +1,35 @@
 """Prometheus metrics: one private registry per daemon, updates cheap enough for every message.
 
 Why it looks like this: the worker handles up to ~10k readings/s, so every label lookup is done
-once, when a model is registered, and the hot path only touches pre-bound children. Labels carry
-config names (model, input) and our own short codes (reason, cause, result), never topics or
-reading values. Each ``Metrics`` builds its own ``CollectorRegistry`` so tests and replay never
-share state with a running daemon.
+once, when a model is registered, and the hot path only touches pre-bound children; slow-moving
+figures (weight norm, loss levels, drift scores, windowed error statistics) are refreshed every
+``refresh_every`` samples. Labels carry config names (model, input) and our own short codes
+(reason, cause, result), never topics or reading values. Each ``Metrics`` builds its own
+``CollectorRegistry`` so tests and replay never share state with a running daemon.
 
-Who calls what (all from the worker thread unless marked *any thread*)::
+The worker's calls (models and inputs named as in the config)::
 
     metrics = Metrics(node="station-7", queue_capacity=10000)
-    mm = metrics.register_model("bearing_temp", "4-32x32-1 tanh", ["speed", "current"],
-                                task="regression", coverage=0.9)
-    metrics.message_received()            # any thread: every message taken from the broker
-    metrics.inbound_dropped()             # any thread: inbound queue full (also counted received)
-    metrics.message_rejected("undecodable")
-    metrics.queue_depth(n); metrics.observe_processing(seconds)
-    metrics.broker_connected(True); metrics.broker_reconnected(); metrics.publish_dropped()
-    metrics.config_reloaded("applied")   # applied | invalid | partial
-    mm.published(predicted, low, high)   # every prediction sent, predict-only ticks included
-    mm.outcome(measured, predicted, loss, low, high)   # target known: error statistics
-    mm.trained(steps, learning_rate, weight_norm, gradient_norm)
-    mm.skipped("stale_input"); mm.guard_tripped("non_finite")
-    mm.loss_drift(score); mm.loss_drift_event(); mm.input_shift("speed", score)
-    mm.input_shift_event("speed"); mm.drift_active(True)
-    mm.checkpoint_saved(checkpoint_id, at); mm.checkpoint_failed()
-    mm.checkpoint_restored(checkpoint_id); mm.checkpoint_skipped_corrupt()
-    mm.rolled_back("operator", checkpoint_id)   # operator | guard | drift
+    metrics.register_model("bearing_temp", "4-32x32-1 tanh", ["speed", "current"],
+                           task="regression", coverage=0.9)
+    metrics.observe_message(seconds)                  # every message the worker handled
+    metrics.rejected("undecodable")                   # an unusable message, by reason
+    metrics.observe_published(model, predicted, low, high)
+    metrics.observe_sample(runtime, prediction, measured, learn_result)
+    metrics.skipped(model, "stale"); metrics.guard_tripped(model, "loss_blowup")
+    metrics.drift_event(model, source)                # source: "loss" or an input name
+    metrics.checkpoint_saved(model, checkpoint_id, at); metrics.checkpoint_failed(model)
+    metrics.checkpoint_restored(model, checkpoint_id); metrics.checkpoint_skipped_corrupt(model)
+    metrics.rolled_back(model, cause, checkpoint_id)  # cause: operator | guard | drift
+    metrics.reload(result)                            # applied | invalid | partial
+    metrics.transport(queue_depth=, queue_dropped=, connected=, reconnects=, publish_dropped=)
     server = serve(settings.metrics, metrics.registry)   # None when listen is null
 
-Scales the callers agree on: ``loss`` is the training loss of one sample (standardised target);
-``loss_drift`` is the detector statistic divided by its alarm level (1.0 = alarm);
-``input_shift`` is the recent-mean shift in reference spreads. Windowed statistics (RMSE,
-residual percentiles, coverage, log-loss, accuracy) cover the last ``residual_window`` outcomes
-and are refreshed every ``refresh_every`` outcomes to keep the per-sample cost low.
+``observe_sample`` reads a ``ModelRuntime`` (name, learner, guard, interval, drift); callers
+without one use ``metrics.model(name)`` and its ``learned``/``outcome``/``levels`` directly.
+Scales: loss levels are the guard's moving averages of the per-sample training loss;
+``loss_drift`` is the detector statistic over its alarm level (1.0 = alarm); input shift is
+the recent-mean shift in reference spreads; coverage is the interval's achieved share.
 """
 from __future__ import annotations
 
@@ -55,7 +52,6 @@ import numpy as np
 from prometheus_client import (CollectorRegistry, Counter, Gauge, Histogram, Info,
                                make_wsgi_app, start_http_server)
 from prometheus_client.exposition import ThreadingWSGIServer
-from prometheus_client.parser import text_string_to_metric_families
 
 from daemon import __version__
 from daemon.errors import ConfigError, EdgepropError
@@ -82,8 +78,6 @@ def _codes(metric: Any, *bound: str) -> Callable[[str], Any]:
             key = code if (_CODE.match(code) and len(cache) < _MAX_CODES) else "other"
             hit = cache.get(key) or metric.labels(*bound, key)
             cache[key] = hit
-            if key == code:
-                cache[code] = hit
         return hit
     return child
 
@@ -93,42 +87,38 @@ class Metrics:
 
     def __init__(self, registry: Optional[CollectorRegistry] = None, node: str = "edgeprop",
                  queue_capacity: int = 0, residual_window: int = 500, refresh_every: int = 32,
-                 loss_short_span: int = 50, loss_long_span: int = 1000,
                  clock: Callable[[], float] = time.time) -> None:
-        self.registry = registry if registry is not None else CollectorRegistry()
-        r = self.registry
-        self._stats_args = (residual_window, refresh_every, loss_short_span, loss_long_span)
+        self.registry = r = registry if registry is not None else CollectorRegistry()
+        self._stats_args = (residual_window, refresh_every)
         self._models: dict[str, ModelMetrics] = {}
-        self.received = Counter(PREFIX + "messages_received", "Messages taken from the broker.",
-                                registry=r)
-        self.rejected = Counter(PREFIX + "messages_rejected",
-                                "Messages dropped as unusable, by reason.", ["reason"], registry=r)
-        self._rejected = _codes(self.rejected)
-        self.queue = Gauge(PREFIX + "inbound_queue_depth", "Readings waiting for the worker.",
-                           registry=r)
-        Gauge(PREFIX + "inbound_queue_capacity", "Size of the inbound queue.",
-              registry=r).set(queue_capacity)
-        self.dropped = Counter(PREFIX + "inbound_dropped",
-                               "Messages dropped because the inbound queue was full.", registry=r)
-        self.processing = Histogram(PREFIX + "message_processing_seconds",
-                                    "Worker time per message, decode to metrics.",
-                                    buckets=PROCESSING_BUCKETS, registry=r)
-        self.connected = Gauge(PREFIX + "broker_connected", "1 while the MQTT session is up.",
-                               registry=r)
-        self.reconnects = Counter(PREFIX + "broker_reconnects",
-                                  "Successful reconnections to the broker.", registry=r)
-        self.pub_dropped = Counter(PREFIX + "publish_dropped",
-                                   "Outgoing messages dropped (outbound bound reached).",
-                                   registry=r)
-        reloads = Counter(PREFIX + "config_reloads", "Configuration reloads, by result.",
-                          ["result"], registry=r)
+
+        def c(name: str, doc: str, *labels: str) -> Counter:
+            return Counter(PREFIX + name, doc, list(labels), registry=r)
+
+        def g(name: str, doc: str) -> Gauge:
+            return Gauge(PREFIX + name, doc, registry=r)
+
+        self._received = c("messages_received", "Messages the worker took from the queue.")
+        self._rejected = _codes(c("messages_rejected", "Messages dropped as unusable, by reason.",
+                                  "reason"))
+        self._processing = Histogram(PREFIX + "message_processing_seconds",
+                                     "Worker time per message, decode to metrics.",
+                                     buckets=PROCESSING_BUCKETS, registry=r)
+        self._queue = g("inbound_queue_depth", "Messages waiting for the worker.")
+        g("inbound_queue_capacity", "Size of the inbound queue.").set(queue_capacity)
+        self._connected = g("broker_connected", "1 while the MQTT session is up.")
+        # Counters the transport keeps as plain totals; advanced by the difference.
+        self._totals = {k: [c(k, doc), 0] for k, doc in (
+            ("inbound_dropped", "Messages lost because the inbound queue was full."),
+            ("broker_reconnects", "Successful reconnections to the broker."),
+            ("publish_dropped", "Outgoing messages not sent (no session or too many unsent)."))}
+        reloads = c("config_reloads", "Configuration reloads, by result.", "result")
         self._reloads = {res: reloads.labels(res) for res in RELOAD_RESULTS}
-        Gauge(PREFIX + "start_time_seconds", "Unix time the daemon started.",
-              registry=r).set(clock())
+        g("start_time_seconds", "Unix time the daemon started.").set(clock())
         Info(PREFIX + "build", "Version of edgeprop and Python; node identity.",
              registry=r).info({"version": __version__, "python": platform.python_version(),
                                "node": node})
-        self._model_families = _ModelFamilies(r)
+        self._families = _ModelFamilies(r)
 
     def register_model(self, name: str, architecture: str, input_names: Iterable[str],
                        task: str = "regression", coverage: Optional[float] = None
@@ -136,8 +126,8 @@ class Metrics:
         """Create and cache every labelled child for one model; call once per model."""
         if name in self._models:
             raise ValueError(f"model {name!r} is already registered with the metrics")
-        mm = ModelMetrics(self._model_families, name, architecture, list(input_names), task,
-                          coverage, *self._stats_args)
+        mm = ModelMetrics(self._families, name, architecture, list(input_names), task, coverage,
+                          *self._stats_args)
         self._models[name] = mm
         return mm
 
@@ -149,44 +139,88 @@ class Metrics:
             raise ValueError(f"no metrics for model {name!r}; registered: "
                              f"{sorted(self._models)}") from None
 
-    def message_received(self, n: int = 1) -> None:
-        """Count messages taken from the broker (any thread)."""
-        self.received.inc(n)
+    # -- process-wide ------------------------------------------------------------------------
+    def observe_message(self, seconds: float) -> None:
+        """Count one message the worker handled and the time it took."""
+        self._received.inc()
+        self._processing.observe(seconds)
 
-    def message_rejected(self, reason: str) -> None:
-        """Count one unusable message under a short reason code."""
+    def rejected(self, reason: str, model: Optional[str] = None) -> None:
+        """Count an unusable message by reason (per reason only: unknown topics have no model)."""
         self._rejected(reason).inc()
 
-    def inbound_dropped(self) -> None:
-        """Count one message lost to a full inbound queue (any thread)."""
-        self.dropped.inc()
+    def transport(self, queue_depth: int, queue_dropped: int, connected: bool,
+                  reconnects: int, publish_dropped: int) -> None:
+        """Copy the broker link's and inbound queue's own figures (running totals) in."""
+        self._queue.set(queue_depth)
+        self._connected.set(1 if connected else 0)
+        for key, total in (("inbound_dropped", queue_dropped), ("broker_reconnects", reconnects),
+                           ("publish_dropped", publish_dropped)):
+            slot = self._totals[key]
+            delta = total - slot[1] if total >= slot[1] else total   # a new link starts at 0
+            if delta:
+                slot[0].inc(delta)
+            slot[1] = total
 
-    def queue_depth(self, depth: int) -> None:
-        """Record how many readings wait in the inbound queue."""
-        self.queue.set(depth)
-
-    def observe_processing(self, seconds: float) -> None:
-        """Record the worker time spent on one message."""
-        self.processing.observe(seconds)
-
-    def broker_connected(self, up: bool) -> None:
-        """Record whether the broker session is up."""
-        self.connected.set(1 if up else 0)
-
-    def broker_reconnected(self) -> None:
-        """Count one reconnection after a lost session."""
-        self.reconnects.inc()
-
-    def publish_dropped(self) -> None:
-        """Count one outgoing message that was not sent."""
-        self.pub_dropped.inc()
-
-    def config_reloaded(self, result: str) -> None:
+    def reload(self, result: str) -> None:
         """Count one reload: applied, invalid (nothing changed) or partial (some refused)."""
         child = self._reloads.get(result)
         if child is None:
             raise ValueError(f"reload result {result!r}; allowed: {', '.join(RELOAD_RESULTS)}")
         child.inc()
+
+    # -- per model, by config name -----------------------------------------------------------
+    def observe_published(self, model: str, predicted: Optional[float] = None,
+                          low: Optional[float] = None, high: Optional[float] = None) -> None:
+        """Count one published prediction; with values, also the latest prediction and band."""
+        self.model(model).published(predicted, low, high)
+
+    def observe_sample(self, rt: Any, pred: Any, measured: float, result: Any) -> None:
+        """Record a learned sample from a ``ModelRuntime``; ``pred`` is None during warm-up."""
+        mm = self.model(rt.name)
+        learner = rt.learner
+        mm.learned(result.steps, learner.learning_rate, result.grad_norm)
+        if pred is None:
+            return
+        mm.drift_active(rt.drift.active)
+        if mm.outcome(measured, pred.value):
+            guard = rt.guard
+            mm.levels(weight_norm=learner.weight_norm(), coverage=rt.interval.coverage,
+                      loss_short=guard.short if guard.seen else None,
+                      loss_long=guard.long if guard.seen else None,
+                      loss_drift=rt.drift.loss_score, input_shift=rt.drift.input_scores)
+
+    def skipped(self, model: str, reason: str) -> None:
+        """Count a target reading that formed no sample."""
+        self.model(model).skipped(reason)
+
+    def guard_tripped(self, model: str, reason: str) -> None:
+        """Count one guard trip."""
+        self.model(model).guard_tripped(reason)
+
+    def drift_event(self, model: str, source: str) -> None:
+        """Count one drift alarm; ``source`` is "loss" or an input name."""
+        self.model(model).drift_event(source)
+
+    def checkpoint_saved(self, model: str, checkpoint_id: str, at: float) -> None:
+        """Record a checkpoint written at unix time ``at``."""
+        self.model(model).checkpoint_saved(checkpoint_id, at)
+
+    def checkpoint_failed(self, model: str) -> None:
+        """Count one failed checkpoint write."""
+        self.model(model).checkpoint_failed()
+
+    def checkpoint_restored(self, model: str, checkpoint_id: str) -> None:
+        """Count a checkpoint loaded into the model."""
+        self.model(model).checkpoint_restored(checkpoint_id)
+
+    def checkpoint_skipped_corrupt(self, model: str) -> None:
+        """Count a checkpoint passed over because it failed its checks."""
+        self.model(model).checkpoint_skipped_corrupt()
+
+    def rolled_back(self, model: str, cause: str, checkpoint_id: str) -> None:
+        """Count a return to an earlier checkpoint: operator, guard or drift."""
+        self.model(model).rolled_back(cause, checkpoint_id)
 
 
 class _ModelFamilies:
@@ -199,7 +233,7 @@ class _ModelFamilies:
         def c(name: str, doc: str, *labels: str) -> Counter:
             return Counter(PREFIX + name, doc, ["model", *labels], registry=r)
 
-        self.samples = c("samples", "Target readings scored and added to the window.")
+        self.samples = c("samples", "Target readings learned from (warm-up included).")
         self.steps = c("training_steps", "SGD steps taken.")
         self.skipped = c("samples_skipped", "Target readings that formed no sample.", "reason")
         self.published = c("predictions_published", "Predictions published.")
@@ -210,11 +244,11 @@ class _ModelFamilies:
         # A "quantile" label is reserved for summaries (promtool says so), hence percentile.
         self.percentile = g("residual_percentile", "Percentile of recent residuals, target units.",
                             "percentile")
-        self.coverage = g("interval_coverage_ratio", "Share of recent readings inside the band.")
+        self.coverage = g("interval_coverage_ratio", "Share of scored readings inside the band.")
         self.coverage_goal = g("interval_coverage_target_ratio", "Coverage the band aims for.")
         self.lr = g("learning_rate", "Learning rate in force.")
-        self.wnorm = g("weight_norm", "Euclidean norm of all weights.")
-        self.gnorm = g("gradient_norm", "Euclidean norm of the last gradient, before clipping.")
+        self.wnorm = g("weight_norm", "Euclidean norm of all network parameters.")
+        self.gnorm = g("gradient_norm", "Euclidean norm of the last gradient.")
         self.loss_drift = g("loss_drift_score", "Loss drift statistic over its alarm level.")
         self.loss_events = c("loss_drift_events", "Drift alarms on the loss stream.")
         self.shift = g("input_shift_score", "Input mean shift, in reference spreads.", "input")
@@ -238,8 +272,7 @@ class ModelMetrics:
     """Pre-bound metric children and windowed error statistics for one model."""
 
     def __init__(self, f: _ModelFamilies, name: str, architecture: str, inputs: list[str],
-                 task: str, coverage: Optional[float], window: int, refresh_every: int,
-                 short_span: int, long_span: int) -> None:
+                 task: str, coverage: Optional[float], window: int, refresh_every: int) -> None:
         if task not in ("regression", "binary"):
             raise ValueError(f"task {task!r}; allowed: regression, binary")
         self.name, self.task = name, task
@@ -249,10 +282,10 @@ class ModelMetrics:
         self._skipped, self._guard = _codes(f.skipped, name), _codes(f.guard, name)
         self._loss = (f.loss.labels(name, "short"), f.loss.labels(name, "long"))
         if task == "regression":
-            self._rmse = f.rmse.labels(*b)
-            self._percentiles = [f.percentile.labels(name, str(q)) for q in RESIDUAL_PERCENTILES]
+            self._windowed = [f.rmse.labels(*b),
+                              *(f.percentile.labels(name, str(p)) for p in RESIDUAL_PERCENTILES)]
         else:
-            self._log_loss, self._accuracy = f.log_loss.labels(*b), f.accuracy.labels(*b)
+            self._windowed = [f.log_loss.labels(*b), f.accuracy.labels(*b)]
         self._coverage = f.coverage.labels(*b)
         if coverage is not None:
             f.coverage_goal.labels(*b).set(coverage)
@@ -266,96 +299,59 @@ class ModelMetrics:
             m.labels(*b) for m in (f.ckpt_fail, f.ckpt_restore, f.ckpt_corrupt))
         self._rollbacks = {c: f.rollbacks.labels(name, c) for c in ROLLBACK_CAUSES}
         self._last = {k: m.labels(*b) for k, m in f.last.items()}
+        for child in (*self._loss, *self._windowed, self._coverage, self._lr, self._wnorm,
+                      self._gnorm, *self._last.values()):
+            child.set(math.nan)              # unknown yet: a gap on the chart, not a false zero
         self._info, self._arch = f.info.labels(*b), architecture
-        for child in self._unknown_until_set():
-            child.set(math.nan)              # a gap on the chart, not a false zero
         self._set_info("none")
-        self._stats = _WindowStats(task, window, refresh_every, short_span, long_span)
+        self._stats = _WindowStats(task == "binary", window, refresh_every)
 
     def __repr__(self) -> str:
         return f"ModelMetrics({self.name!r}, task={self.task!r})"
 
-    def _unknown_until_set(self) -> list[Any]:
-        windowed = ([self._rmse, *self._percentiles] if self.task == "regression"
-                    else [self._log_loss, self._accuracy])
-        return [*self._loss, *windowed, self._coverage, self._lr, self._wnorm, self._gnorm,
-                *self._last.values()]
-
     def _set_info(self, checkpoint: str) -> None:
         self._info.info({"checkpoint": checkpoint, "architecture": self._arch, "task": self.task})
 
-    def published(self, predicted: float, low: Optional[float], high: Optional[float]) -> None:
-        """Record one published prediction and its band."""
+    def published(self, predicted: Optional[float], low: Optional[float],
+                  high: Optional[float]) -> None:
+        """Count one published prediction; record it and its band when given."""
         self._published.inc()
-        self._last["predicted"].set(predicted)
+        if predicted is not None:
+            self._last["predicted"].set(predicted)
         if low is not None and high is not None:
             self._last["interval_low"].set(low)
             self._last["interval_high"].set(high)
 
-    def outcome(self, measured: float, predicted: float, loss: float,
-                low: Optional[float] = None, high: Optional[float] = None) -> None:
-        """Record a scored target reading: counts, latest values, windowed error statistics."""
-        self._samples.inc()
+    def outcome(self, measured: float, predicted: float) -> bool:
+        """Record a reading scored against its prediction; True when slow gauges are due."""
         self._last["measured"].set(measured)
         self._last["residual"].set(measured - predicted)
-        inside = None if low is None or high is None else low <= measured <= high
-        if self._stats.add(measured, predicted, loss, inside):
-            self.flush()
+        if self._stats.add(measured, predicted):
+            for child, value in zip(self._windowed, self._stats.summary()):
+                child.set(value)
+            return True
+        return False
 
-    def flush(self) -> None:
-        """Recompute the windowed statistics now (normally done every ``refresh_every``)."""
-        st = self._stats
-        st.pending = 0
-        self._loss[0].set(st.short)
-        self._loss[1].set(st.long)
-        if st.count:
-            if self.task == "regression":
-                rmse, ps = st.regression()
-                self._rmse.set(rmse)
-                for child, value in zip(self._percentiles, ps):
-                    child.set(value)
-            else:
-                log_loss, accuracy = st.binary()
-                self._log_loss.set(log_loss)
-                self._accuracy.set(accuracy)
-        if st.inside_count:
-            self._coverage.set(st.coverage())
-
-    def trained(self, steps: int, learning_rate: float, weight_norm: float,
-                gradient_norm: float) -> None:
-        """Record SGD steps just taken and the state they left."""
-        self._steps.inc(steps)
+    def learned(self, steps: int, learning_rate: float, gradient_norm: float) -> None:
+        """Count one sample learned from, its SGD steps (none in warm-up) and the rate in force."""
+        self._samples.inc()
         self._lr.set(learning_rate)
-        self._wnorm.set(weight_norm)
-        self._gnorm.set(gradient_norm)
+        if steps:
+            self._steps.inc(steps)
+            self._gnorm.set(gradient_norm)
 
-    def learning_rate(self, value: float) -> None:
-        """Record a learning rate change made outside a step (reload, drift boost, guard)."""
-        self._lr.set(value)
-
-    def skipped(self, reason: str) -> None:
-        """Count a target reading that formed no sample (e.g. stale_input)."""
-        self._skipped(reason).inc()
-
-    def guard_tripped(self, reason: str) -> None:
-        """Count one guard trip (e.g. non_finite, blowup)."""
-        self._guard(reason).inc()
-
-    def loss_drift(self, score: float) -> None:
-        """Record the loss detector statistic as a fraction of its alarm level."""
-        self._loss_drift.set(score)
-
-    def loss_drift_event(self) -> None:
-        """Count one drift alarm on the loss stream."""
-        self._loss_events.inc()
-
-    def input_shift(self, input_name: str, score: float) -> None:
-        """Record the mean shift of one input in reference spreads."""
-        self._input(self._shift, input_name).set(score)
-
-    def input_shift_event(self, input_name: str) -> None:
-        """Count one shift alarm on an input."""
-        self._input(self._shift_events, input_name).inc()
+    def levels(self, *, weight_norm: Optional[float] = None, coverage: Optional[float] = None,
+               loss_short: Optional[float] = None, loss_long: Optional[float] = None,
+               loss_drift: Optional[float] = None,
+               input_shift: Optional[dict[str, float]] = None) -> None:
+        """Set the slow-moving figures that are given; leave the others as they are."""
+        for child, value in ((self._wnorm, weight_norm), (self._coverage, coverage),
+                             (self._loss[0], loss_short), (self._loss[1], loss_long),
+                             (self._loss_drift, loss_drift)):
+            if value is not None:
+                child.set(value)
+        for name, score in (input_shift or {}).items():
+            self._input(self._shift, name).set(score)
 
     def _input(self, children: dict[str, Any], input_name: str) -> Any:
         child = children.get(input_name)
@@ -367,6 +363,21 @@ class ModelMetrics:
     def drift_active(self, active: bool) -> None:
         """Record whether the published drift flag is up."""
         self._drift.set(1 if active else 0)
+
+    def drift_event(self, source: str) -> None:
+        """Count one drift alarm: "loss" for the error stream, else the input's name."""
+        if source == "loss":
+            self._loss_events.inc()
+        else:
+            self._input(self._shift_events, source).inc()
+
+    def skipped(self, reason: str) -> None:
+        """Count a target reading that formed no sample (e.g. stale)."""
+        self._skipped(reason).inc()
+
+    def guard_tripped(self, reason: str) -> None:
+        """Count one guard trip (e.g. non_finite, loss_blowup)."""
+        self._guard(reason).inc()
 
     def checkpoint_saved(self, checkpoint_id: str, at: float) -> None:
         """Record a checkpoint written at unix time ``at``; it is now the one in service."""
@@ -396,63 +407,43 @@ class ModelMetrics:
 
 
 class _WindowStats:
-    """Ring buffers and loss averages behind the windowed gauges (worker thread only)."""
+    """Ring buffer behind the windowed error gauges (worker thread only)."""
 
-    def __init__(self, task: str, window: int, refresh_every: int, short_span: int,
-                 long_span: int) -> None:
-        if window < 1 or refresh_every < 1 or short_span < 1 or long_span < 1:
-            raise ValueError("residual_window, refresh_every and loss spans must be >= 1")
-        self.is_binary = task == "binary"
+    def __init__(self, binary: bool, window: int, refresh_every: int) -> None:
+        if window < 1 or refresh_every < 1:
+            raise ValueError("residual_window and refresh_every must be >= 1")
+        self.binary = binary
         self.err = np.zeros(window)          # residuals, or per-sample log-loss when binary
         self.hit = np.zeros(window)          # binary: 1 when classed right
-        self.inside = np.zeros(window)
-        self.count = self.pos = self.inside_count = self.inside_pos = 0
+        self.count = self.pos = 0
         self.every = refresh_every
         self.pending = refresh_every - 1     # so the first outcome refreshes the gauges
-        # Exponential moving averages with weight 1/span: common practice, no source.
-        self.a_short, self.a_long = 1.0 / short_span, 1.0 / long_span
-        self.short = self.long = float("nan")
 
-    def add(self, measured: float, predicted: float, loss: float,
-            inside: Optional[bool]) -> bool:
-        """Take one outcome; return True when the gauges are due for a refresh."""
-        self.pending += 1
-        n = self.err.size
-        if self.is_binary:
+    def add(self, measured: float, predicted: float) -> bool:
+        """Take one outcome; True when the gauges are due for a refresh."""
+        if self.binary:
             # Probability clipped as scikit-learn's log_loss does (float64 eps).
             p = min(max(predicted, 2.220446049250313e-16), 1 - 2.220446049250313e-16)
             e = -math.log(p) if measured >= 0.5 else -math.log1p(-p)
             self.hit[self.pos] = float((predicted >= 0.5) == (measured >= 0.5))
         else:
             e = measured - predicted
-        if math.isfinite(e):                 # a non-finite step is the guard's business
+        if math.isfinite(e):                 # a non-finite value is the guard's business
             self.err[self.pos] = e
-            self.pos = (self.pos + 1) % n
-            self.count = min(self.count + 1, n)
-        if inside is not None:
-            self.inside[self.inside_pos] = 1.0 if inside else 0.0
-            self.inside_pos = (self.inside_pos + 1) % n
-            self.inside_count = min(self.inside_count + 1, n)
-        if math.isfinite(loss):
-            if self.short != self.short:     # the first finite loss seeds both averages
-                self.short = self.long = float(loss)
-            else:
-                self.short += self.a_short * (loss - self.short)
-                self.long += self.a_long * (loss - self.long)
-        return self.pending >= self.every    # first outcome, then every refresh_every
+            self.pos = (self.pos + 1) % self.err.size
+            self.count = min(self.count + 1, self.err.size)
+        self.pending += 1
+        if self.pending < self.every or not self.count:
+            return False
+        self.pending = 0
+        return True
 
-    def regression(self) -> tuple[float, list[float]]:
-        """RMSE and residual percentiles over the filled part of the window."""
-        r = self.err[:self.count]
-        return float(np.sqrt(np.mean(r * r))), np.percentile(r, RESIDUAL_PERCENTILES).tolist()
-
-    def binary(self) -> tuple[float, float]:
-        """Mean log-loss and accuracy over the filled part of the window."""
-        return float(np.mean(self.err[:self.count])), float(np.mean(self.hit[:self.count]))
-
-    def coverage(self) -> float:
-        """Share of recent readings that fell inside their band."""
-        return float(np.mean(self.inside[:self.inside_count]))
+    def summary(self) -> list[float]:
+        """Regression: RMSE then residual percentiles; binary: mean log-loss then accuracy."""
+        e = self.err[:self.count]
+        if self.binary:
+            return [float(np.mean(e)), float(np.mean(self.hit[:self.count]))]
+        return [float(np.sqrt(np.mean(e * e))), *np.percentile(e, RESIDUAL_PERCENTILES).tolist()]
 
 
 # --- HTTP endpoint ----------------------------------------------------------------------------
@@ -511,6 +502,7 @@ def serve(settings: MetricsSettings, registry: CollectorRegistry) -> Optional[Me
             httpd, thread = start_http_server(port, host, registry,
                                               certfile=tls.cert_file if tls else None,
                                               keyfile=tls.key_file if tls else None)
+            _harden(httpd)
         else:
             password = read_password(settings.basic_auth.password_file)
             app = _basic_auth(make_wsgi_app(registry), settings.basic_auth.username, password)
@@ -575,6 +567,19 @@ class _QuietHandler(WSGIRequestHandler):
         pass                                 # scrapes every 15 s would flood the journal
 
 
+def _harden(httpd: WSGIServer) -> None:
+    """Keep one silent client from freezing the endpoint (measured: it did, under TLS).
+
+    The TLS handshake otherwise runs inside ``accept()`` on the single serving thread, so a
+    client that connects and never speaks blocks every scrape. Deferred, it runs in the
+    connection's own thread, bounded by the handler timeout. Both are public attributes of
+    the standard library's ``ssl.SSLSocket`` and ``socketserver.BaseServer``.
+    """
+    if isinstance(httpd.socket, ssl.SSLSocket):
+        httpd.socket.do_handshake_on_connect = False
+    httpd.RequestHandlerClass = _QuietHandler
+
+
 def _start_wsgi(host: str, port: int, app: Callable, tls: Any
                 ) -> tuple[WSGIServer, threading.Thread]:
     """Serve ``app`` from wsgiref in a daemon thread (the basic-auth path)."""
@@ -584,42 +589,8 @@ def _start_wsgi(host: str, port: int, app: Callable, tls: Any
     httpd = make_server(host, port, app, server_class, handler_class=_QuietHandler)
     if tls is not None:
         ctx = _tls_context(tls.cert_file, tls.key_file)
-        httpd.socket = ctx.wrap_socket(httpd.socket, server_side=True)
+        httpd.socket = ctx.wrap_socket(httpd.socket, server_side=True,
+                                       do_handshake_on_connect=False)
     thread = threading.Thread(target=httpd.serve_forever, name="metrics-http", daemon=True)
     thread.start()
     return httpd, thread
-
-
-# --- names used by the deploy/ files (for tests that hold them against a live scrape) -------
-
-def metric_names_in(promql: str) -> set[str]:
-    """Metric names an expression reads, ignoring quoted label values."""
-    bare = re.sub(r'"(?:[^"\\]|\\.)*"|\'(?:[^\'\\]|\\.)*\'', '""', promql)
-    return set(re.findall(r"(?<![A-Za-z0-9_:])(" + PREFIX + r"[a-z0-9_]+)", bare))
-
-
-def dashboard_exprs(dashboard: dict) -> list[str]:
-    """Every PromQL string in a dashboard model: panel targets and template queries."""
-    found: list[str] = []
-
-    def walk(node: Any, key: str = "") -> None:
-        if isinstance(node, dict):
-            for k, v in node.items():
-                walk(v, k)
-        elif isinstance(node, list):
-            for v in node:
-                walk(v, key)
-        elif isinstance(node, str) and key in ("expr", "query", "definition"):
-            found.append(node)
-    walk(dashboard)
-    return found
-
-
-def rule_exprs(rules: dict) -> list[str]:
-    """Every ``expr`` in a Prometheus rule file (already parsed from YAML)."""
-    return [r["expr"] for g in rules.get("groups", []) for r in g.get("rules", [])]
-
-
-def scraped_names(text: str) -> set[str]:
-    """Names of the samples present in a text-format scrape (``_total``, ``_bucket`` ...)."""
-    return {s.name for fam in text_string_to_metric_families(text) for s in fam.samples}

@@ -88,6 +88,14 @@ def tls_context(tls: TlsSettings) -> ssl.SSLContext:
     return context
 
 
+def _settled(info: mqtt.MQTTMessageInfo) -> bool:
+    """True once a publish left (QoS 0), was acknowledged (QoS 1) or was given up by paho."""
+    try:
+        return info.is_published()
+    except (RuntimeError, ValueError):     # paho raises for messages it dropped, e.g. on reconnect
+        return True
+
+
 class _Client(mqtt.Client):
     """paho's client, remembering why the last connection attempt failed (paho drops the reason)."""
 
@@ -115,6 +123,8 @@ class BrokerLink:
             raise ConfigError([f"broker.protocol: {settings.protocol!r} is not supported; use '3.1.1' or '5'"])
         if settings.password_file and not settings.username:
             raise ConfigError(["broker.password_file is set but broker.username is not; set both"])
+        if max_pending < 1:
+            raise ValueError(f"max_pending must be >= 1, got {max_pending!r}")
         self.settings = settings
         self.status_topic = f"edgeprop/{node}/status"
         self.client_id = settings.client_id or f"edgeprop-{node}"
@@ -193,7 +203,10 @@ class BrokerLink:
         return self._ready.wait(timeout)
 
     def publish(self, topic: str, payload: bytes | str, qos: int = 0, retain: bool = False) -> bool:
-        """Queue one message without blocking; False (counted) when offline or too much is unsent."""
+        """Queue one message without blocking; False (counted) when offline or too much is unsent.
+
+        A topic with wildcards raises ValueError (paho's check): that is a programming error.
+        """
         if not self._connected.is_set() or not self._has_room():
             with self._lock:
                 self.publish_dropped += 1
@@ -204,7 +217,7 @@ class BrokerLink:
                 self.publish_dropped += 1
             return False
         with self._lock:
-            if not info.is_published():
+            if not _settled(info):
                 self._pending[info.mid] = info
         return True
 
@@ -236,7 +249,7 @@ class BrokerLink:
             if len(self._pending) < self.max_pending:
                 return True
             # QoS 0 messages lost in a reconnect are marked published without on_publish
-            self._pending = {mid: i for mid, i in self._pending.items() if not i.is_published()}
+            self._pending = {mid: i for mid, i in self._pending.items() if not _settled(i)}
             return len(self._pending) < self.max_pending
 
     def _retry_later(self, event: str, reason: str) -> None:
@@ -246,12 +259,13 @@ class BrokerLink:
         paho's own wait is set to zero, so this wait is the only one and the logged delay true.
         """
         self.last_error = reason
+        # "full jitter": uniform between the floor and a doubling, capped ceiling (M. Brooker,
+        # "Exponential Backoff And Jitter", AWS Architecture Blog 2015; cited from memory)
         lo, hi = self.settings.reconnect_min_s, self.settings.reconnect_max_s
         cap = min(hi, lo * 2.0 ** min(self._failures + 1, 40))
         delay = float(self._rng.uniform(lo, cap)) if cap > lo else lo
         self._failures += 1
         self._log("warning", event, reason=reason, retry_in_s=round(delay, 2))
-        self._client.reconnect_delay_set(0, 0)
         self._wake.wait(delay)          # stop() sets it so shutdown never waits out a backoff
 
     # ---- paho callbacks (network thread: must not raise) ---------------------------------

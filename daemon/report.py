@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import math
 import os
+import textwrap
 from dataclasses import dataclass
 from typing import Optional
 
@@ -141,7 +142,8 @@ def write_report(messages: list[dict], out_dir: str, title: str,
     for k, s in enumerate(series):
         _draw_model(axes[2 * k], axes[2 * k + 1], s, t0, events)
     axes[-1].set_xlabel("hours from start")
-    fig.suptitle(f"{title}  (red dashed: drift, green dotted: learning rate)", fontsize=10)
+    legend = "(red dashed: drift, green dotted: learning rate)"
+    fig.suptitle(textwrap.fill(f"{title}  {legend}", 120), fontsize=10)
     png = os.path.join(out_dir, "report.png")
     fig.savefig(png, dpi=100)
     txt = os.path.join(out_dir, "report.txt")

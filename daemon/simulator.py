@@ -138,7 +138,7 @@ class PumpStation:
 
     def __init__(self, seed: int | np.random.Generator = 0, start_t: float = DEFAULT_START_T,
                  fault_at_s: Optional[float] = None, season_at_s: Optional[float] = None,
-                 dt_s: float = 30.0, plant: PlantParams = PlantParams()) -> None:
+                 dt_s: float = 60.0, plant: PlantParams = PlantParams()) -> None:
         if dt_s <= 0:
             raise ValueError(f"dt_s must be > 0, got {dt_s!r}")
         self.rng = seed if isinstance(seed, np.random.Generator) else np.random.default_rng(seed)

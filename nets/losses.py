@@ -46,6 +46,18 @@ class Loss:
         """Batch-mean loss."""
         return float(self.per_sample(z, y).mean())
 
+    def value_and_grad(self, z: np.ndarray, y: np.ndarray, out: np.ndarray) -> float:
+        """Batch-mean loss, with dL/dz written into ``out``; the squared loss shares its residual."""
+        if self.name != "squared":
+            value = self.value(z, y)
+            self.grad(z, y, out)
+            return value
+        np.subtract(z, y, out=out)
+        flat = out.reshape(-1)
+        value = float(np.dot(flat, flat)) / z.shape[0]
+        out *= 2.0 / z.shape[0]
+        return value
+
     def grad(self, z: np.ndarray, y: np.ndarray, out: np.ndarray) -> np.ndarray:
         """Write dL/dz of the batch-mean loss into ``out`` and return it."""
         scale = 1.0 / z.shape[0]

@@ -29,6 +29,7 @@ class _Buffers:
         self.outs = [np.empty((batch, n), dtype) for n in sizes[1:]]
         self.deltas = [np.empty((batch, n), dtype) for n in sizes[1:]]
         self.tmps = [np.empty((batch, n), dtype) for n in sizes[1:]]
+        self.ones = np.ones(batch, dtype)      # bias gradient = ones @ delta: one BLAS call
 
 
 class Network:
@@ -122,13 +123,13 @@ class Network:
         """Fill ``grads`` with d(batch-mean loss)/d(params) by backpropagation; return the loss."""
         z = self.forward(x)
         buf = self._buffers[x.shape[0]]
-        value = loss.value(z, y)
-        delta = loss.grad(z, y, out=buf.deltas[-1])
+        delta = buf.deltas[-1]
+        value = loss.value_and_grad(z, y, out=delta)
         backprop = self._act.backprop
         for i in range(len(self.weights) - 1, -1, -1):
             a_prev = x if i == 0 else buf.outs[i - 1]
             np.dot(a_prev.T, delta, out=self.weight_grads[i])
-            np.sum(delta, axis=0, out=self.bias_grads[i])
+            np.dot(buf.ones, delta, out=self.bias_grads[i])
             if i > 0:
                 prev = buf.deltas[i - 1]
                 np.dot(delta, self.weights[i].T, out=prev)

@@ -2,36 +2,66 @@
 from __future__ import annotations
 
 import json
-import os
 import re
-import shutil
 import subprocess
 from pathlib import Path
 
-import pytest
 import yaml
 from prometheus_client import generate_latest
+from prometheus_client.parser import text_string_to_metric_families
 
-from daemon.metrics import (Metrics, dashboard_exprs, metric_names_in, rule_exprs,
-                            scraped_names)
+from daemon.metrics import Metrics
+from tooling import require_tool
 
 DEPLOY = Path(__file__).resolve().parent.parent / "deploy"
-IN_CI = os.environ.get("CI", "").lower() in ("1", "true", "yes")
 
 
-def promtool() -> str:
-    """Path to promtool; a missing one fails under CI and skips elsewhere."""
-    path = shutil.which("promtool")
-    if path is None:
-        if IN_CI:
-            pytest.fail("promtool is missing; CI installs Debian's 'prometheus' package for it")
-        pytest.skip("promtool not installed (Debian package 'prometheus')")
-    return path
+# -- names the deploy/ files use; also for a live-daemon test: ``used_metric_names()`` must be
+# -- a subset of ``scraped_names(<text of GET /metrics>)``.
+
+def metric_names_in(promql: str) -> set[str]:
+    """edgeprop metric names an expression reads, ignoring quoted label values."""
+    bare = re.sub(r'"(?:[^"\\]|\\.)*"|\'(?:[^\'\\]|\\.)*\'', '""', promql)
+    return set(re.findall(r"(?<![A-Za-z0-9_:])(edgeprop_[a-z0-9_]+)", bare))
+
+
+def dashboard_exprs(dashboard: dict) -> list[str]:
+    """Every PromQL string in a dashboard model: panel targets, annotations, template queries."""
+    found: list[str] = []
+
+    def walk(node: object, key: str = "") -> None:
+        if isinstance(node, dict):
+            for k, v in node.items():
+                walk(v, k)
+        elif isinstance(node, list):
+            for v in node:
+                walk(v, key)
+        elif isinstance(node, str) and key in ("expr", "query", "definition"):
+            found.append(node)
+    walk(dashboard)
+    return found
+
+
+def rule_exprs(rules: dict) -> list[str]:
+    """Every ``expr`` in a parsed Prometheus rule file."""
+    return [r["expr"] for g in rules.get("groups", []) for r in g.get("rules", [])]
+
+
+def scraped_names(text: str) -> set[str]:
+    """Sample names present in a text-format scrape (``_total``, ``_bucket``, ``_info`` ...)."""
+    return {s.name for fam in text_string_to_metric_families(text) for s in fam.samples}
+
+
+def used_metric_names() -> dict[str, set[str]]:
+    """edgeprop metric names read by deploy/dashboard.json and deploy/alerts.yml."""
+    return {"dashboard.json": set().union(*map(metric_names_in, dashboard_exprs(load_dashboard()))),
+            "alerts.yml": set().union(*map(metric_names_in, rule_exprs(load_rules())))}
 
 
 def run_promtool(*args: str, stdin: str | None = None) -> subprocess.CompletedProcess:
-    return subprocess.run([promtool(), *args], input=stdin, capture_output=True, text=True,
-                          timeout=60)
+    """Run promtool (Debian package 'prometheus'); missing: a failure under CI, else a skip."""
+    return subprocess.run([require_tool("promtool"), *args], input=stdin, capture_output=True,
+                          text=True, timeout=60)
 
 
 def populated_scrape() -> str:
@@ -40,28 +70,23 @@ def populated_scrape() -> str:
     reg = m.register_model("bearing_temp", "4-32x32-1 tanh", ["speed", "current"], coverage=0.9)
     binary = m.register_model("seal_leak", "3-16-1 relu", ["flow"], task="binary")
     for i in range(40):
-        m.message_received()
-        m.observe_processing(1e-4 * (1 + i % 7))
-        reg.published(61.0 + 0.01 * i, 59.5, 62.5)
-        reg.outcome(61.5, 61.0 + 0.01 * i, 0.2, 59.5, 62.5)
-        binary.published(0.8, None, None)
-        binary.outcome(1.0, 0.8, 0.22)
-        reg.trained(1, 0.01, 4.0, 0.3)
-        binary.trained(1, 0.02, 2.0, 0.1)
-    m.message_rejected("undecodable")
-    m.inbound_dropped()
-    m.publish_dropped()
-    m.queue_depth(3)
-    m.broker_connected(True)
-    m.broker_reconnected()
-    m.config_reloaded("applied")
+        m.observe_message(1e-4 * (1 + i % 7))
+        m.observe_published("bearing_temp", 61.0 + 0.01 * i, 59.5, 62.5)
+        reg.learned(1, 0.01, 0.3)
+        reg.outcome(61.5, 61.0 + 0.01 * i)
+        m.observe_published("seal_leak", 0.8)
+        binary.learned(1, 0.02, 0.1)
+        binary.outcome(1.0, 0.8)
+    m.rejected("undecodable")
+    m.transport(queue_depth=3, queue_dropped=1, connected=True, reconnects=1, publish_dropped=1)
+    m.reload("applied")
     for mm, inp in ((reg, "speed"), (binary, "flow")):
-        mm.skipped("stale_input")
-        mm.guard_tripped("blowup")
-        mm.loss_drift(0.4)
-        mm.loss_drift_event()
-        mm.input_shift(inp, 2.5)
-        mm.input_shift_event(inp)
+        mm.levels(weight_norm=4.0, coverage=0.9, loss_short=0.2, loss_long=0.25, loss_drift=0.4,
+                  input_shift={inp: 2.5})
+        mm.skipped("stale")
+        mm.guard_tripped("loss_blowup")
+        mm.drift_event("loss")
+        mm.drift_event(inp)
         mm.drift_active(False)
         mm.checkpoint_saved("20261201T101500Z-000042", 1_733_000_000.0)
         mm.checkpoint_failed()
@@ -77,11 +102,6 @@ def load_dashboard() -> dict:
 
 def load_rules() -> dict:
     return yaml.safe_load((DEPLOY / "alerts.yml").read_text())
-
-
-def names_used() -> dict[str, set[str]]:
-    return {"dashboard.json": set().union(*map(metric_names_in, dashboard_exprs(load_dashboard()))),
-            "alerts.yml": set().union(*map(metric_names_in, rule_exprs(load_rules())))}
 
 
 def test_alert_rules_pass_promtool() -> None:
@@ -113,7 +133,7 @@ def test_promtool_check_metrics_can_fail() -> None:
 
 def test_every_metric_in_dashboard_and_alerts_is_exposed() -> None:
     exposed = scraped_names(populated_scrape())
-    used = names_used()
+    used = used_metric_names()
     assert len(used["dashboard.json"]) >= 25 and len(used["alerts.yml"]) >= 8
     for where, names in used.items():
         missing = sorted(names - exposed)

@@ -4,6 +4,7 @@ from __future__ import annotations
 import os
 import queue
 import shutil
+import socket
 import subprocess
 import sys
 import tempfile
@@ -106,6 +107,8 @@ def test_online_subscribe_publish_then_offline_on_clean_stop(broker, protocol):
         link.start()
         assert link.wait_connected(5)
         watcher.expect("edgeprop/station-7/status", b"online")
+        # Nagle off on the live socket (FIELD-NOTES: otherwise ~40 ms stalls on small messages)
+        assert link._client.socket().getsockopt(socket.IPPROTO_TCP, socket.TCP_NODELAY) != 0
 
         watcher.publish("site/p1/speed", b"1480.0")
         item = sink.get(5.0)
@@ -221,6 +224,29 @@ def test_publish_is_bounded_when_the_broker_stops_acknowledging(broker):
         assert wait_until(lambda: link.publish("edgeprop/station-7/m", b"again", qos=1), 5)
     finally:
         broker.resume()
+        link.stop()
+
+
+def test_unsent_qos0_backlog_is_bounded_and_cleared_by_a_reconnect(broker):
+    link = make_link(broker.port, [], **FAST_RETRY)
+    link.max_pending = 3
+    big = b"x" * 2_000_000          # fills the loopback socket buffers in a few messages
+    try:
+        link.start()
+        assert link.wait_connected(5)
+        broker.pause()
+        accepted = 0
+        for _ in range(20):
+            if not link.publish("edgeprop/station-7/m", big):
+                break
+            accepted += 1
+        assert 3 <= accepted < 20 and link.publish_dropped == 1   # refused, not piled up
+        broker.kill()                # the stuck messages die with the connection ...
+        assert wait_until(lambda: not link.connected, 5)
+        broker.start()
+        assert link.wait_connected(5)
+        assert link.publish("edgeprop/station-7/m", b"1")          # ... and free their places
+    finally:
         link.stop()
 
 

@@ -67,7 +67,8 @@ def test_friedman1_prequential_rmse_near_the_noise_floor():
     tail = last_part(len(y))
     score = rmse(preds[tail], y[tail])
     assert 0.9 < score <= 1.3, f"prequential RMSE {score:.3f}"
-    assert rmse(np.full(tail.stop - tail.start, y.mean()), y[tail]) > 4.0   # the task is not trivial
+    # the task is not trivial: predicting the mean scores about 5
+    assert rmse(np.full(tail.stop - tail.start, y.mean()), y[tail]) > 4.0
 
 
 def test_concentric_circles_binary_head():

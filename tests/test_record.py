@@ -6,6 +6,7 @@ import threading
 import time
 
 import paho.mqtt.client as mqtt
+import pytest
 
 from daemon.capture import CaptureLine, read_capture
 from daemon.errors import EdgepropError
@@ -184,3 +185,24 @@ def test_records_the_simulated_station(broker, tmp_path):
     assert got.count("speed") == 2 and got.count("flow") == 2 and got.count("bearing_temp") == 2
     bodies = [json.loads(x.payload) for x in lines if x.topic.endswith("bearing_temp")]
     assert all(set(b) == {"value", "ts"} for b in bodies)
+
+
+def test_silent_broker_times_out_with_a_clear_error(tmp_path):
+    import socket
+    with socket.socket() as server:            # accepts TCP but never answers CONNECT
+        server.bind(("127.0.0.1", 0))
+        server.listen(1)
+        port = server.getsockname()[1]
+        s = make_settings("127.0.0.1", port)
+        with pytest.raises(EdgepropError, match="did not confirm the subscriptions within 0.5 s"):
+            record(s, str(tmp_path / "d.jsonl"), None, 1, lambda *a, **k: None, threading.Event(),
+                   connect_timeout_s=0.5)
+    assert not (tmp_path / "d.jsonl").exists()
+
+
+def test_missing_tls_file_is_a_clear_error(tmp_path):
+    from daemon.settings import TlsSettings
+    s = make_settings("127.0.0.1", 1, tls=TlsSettings(ca_file=str(tmp_path / "nope.pem")))
+    with pytest.raises(EdgepropError, match="broker.tls"):
+        record(s, str(tmp_path / "e.jsonl"), None, 1, lambda *a, **k: None, threading.Event())
+    assert not (tmp_path / "e.jsonl").exists()
