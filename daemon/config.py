@@ -220,15 +220,16 @@ def _listen(v, path, ctx):
     if not isinstance(v, str):
         return _wrong(v, "'HOST:PORT' or null", path, ctx)
     m = re.fullmatch(r"\[([0-9A-Fa-f:.]+)\]:(\d{1,5})|([A-Za-z0-9._-]+):(\d{1,5})", v)
-    ok = m is not None and 1 <= int(m.group(2) or m.group(4)) <= 65535
+    ok = m is not None and 0 <= int(m.group(2) or m.group(4)) <= 65535
     if ok and m.group(1):
         try:
             ipaddress.IPv6Address(m.group(1))
         except ValueError:
             ok = False
     if not ok:
-        return ctx.bad(path, f"{show(v)} is not HOST:PORT with port 1..65535; e.g. "
-                             f"'127.0.0.1:9740' or '[::1]:9740' (null disables the endpoint)")
+        return ctx.bad(path, f"{show(v)} is not HOST:PORT with port 0..65535; e.g. "
+                             f"'127.0.0.1:9740' or '[::1]:9740' (port 0 picks a free port and logs it; "
+                             f"null disables the endpoint)")
     return v
 
 

@@ -36,6 +36,7 @@ LARGE_LOSS = 4.0                # loss ratio mapped to u = 1; 2-sigma of a squar
 LOSS_REFERENCE_SAMPLES = 1000   # time constant of the loss reference (common practice, no source)
 LOSS_FLOOR = 1e-9               # reference floor for a perfect fit (common practice, no source)
 CHANGE_SEARCH = 2048            # newest u values searched for the change point
+REARM_RATIO = 0.8               # reference fall that re-arms the detector (tuned on learning curves)
 ADWIN_BUCKETS = 5               # buckets per size class, "M" in Bifet & Gavalda 2007
 ADWIN_CHECK_EVERY = 16          # samples between cut checks (pure-Python cost; see Adwin)
 ADWIN_MIN_SIDE = 5              # fewest samples on either side of a cut (common practice, no source)
@@ -292,7 +293,7 @@ class RelativeLoss:
 
     def reset(self) -> None:
         """Start a new reference (after a drift is acted on)."""
-        self.n, self.reference, self.kept = 0, 0.0, 0
+        self.n, self.reference, self.armed, self.kept = 0, 0.0, 0.0, 0
 
     def update(self, loss: float) -> Optional[float]:
         """Relative loss of this sample, or None while the reference is forming."""
@@ -305,7 +306,21 @@ class RelativeLoss:
         self.n += 1
         ref = self.reference + (loss - self.reference) / min(self.n, self.time_constant)
         self.reference = max(ref, LOSS_FLOOR)
+        if self.n == self.warmup:
+            self.armed = self.reference
         return u
+
+    def improved(self) -> bool:
+        """True (once) when the reference has fallen by ``REARM_RATIO`` since the last time.
+
+        A model that gets better leaves the lagging reference above its loss for a while,
+        so u dips and later climbs back: to a detector that remembers the dip this looks
+        like an increase. Re-arming the detector at each such fall forgets the dip.
+        """
+        if self.n > self.warmup and self.reference < REARM_RATIO * self.armed:
+            self.armed, self.kept = self.reference, 0
+            return True
+        return False
 
     def newest(self) -> np.ndarray:
         """The kept u values (at most CHANGE_SEARCH), oldest first."""
@@ -328,11 +343,13 @@ class RelativeLoss:
 
     def state(self) -> dict[str, np.ndarray]:
         """Plain arrays for a checkpoint."""
-        return {**_arrays(n=self.n, reference=self.reference), "history": self.newest()}
+        return {**_arrays(n=self.n, reference=self.reference, armed=self.armed),
+                "history": self.newest()}
 
     def load_state(self, arrays: dict[str, np.ndarray]) -> None:
         """Restore from ``state`` output."""
         self.n, self.reference = int(arrays["n"]), _scalar(arrays, "reference")
+        self.armed = _scalar(arrays, "armed")
         values = np.asarray(arrays["history"], np.float64).ravel()[-CHANGE_SEARCH:]
         self.history = np.zeros(CHANGE_SEARCH)
         self.history[:values.size] = values
@@ -523,6 +540,8 @@ class DriftMonitor:
         event = None
         if math.isfinite(loss):
             u = self.relative.update(loss)
+            if self.relative.improved():
+                self.detector.reset()
             if u is not None and self.detector.update(u):
                 event = DriftEvent("loss", float(self.detector.alarm_score), self.relative.change_age())
         fired = []

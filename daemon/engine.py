@@ -46,7 +46,8 @@ class Engine:
             self.models[m.name] = ModelRuntime(m, settings.publish_topic(m), store)
             if metrics is not None:
                 metrics.register_model(m.name, self.models[m.name].learner.net.architecture,
-                                       [i.name for i in m.inputs])
+                                       [i.name for i in m.inputs], task=m.task,
+                                       coverage=m.interval.coverage)
         self.last_checkpoint_t = clock()
         self.rejects: dict[str, int] = {}
         self.drift_events: dict[str, int] = {}
@@ -92,6 +93,8 @@ class Engine:
             self._publish_prediction(rt, t, pred, y)
         result = rt.learner.learn(x, y, pred)
         if pred is None:
+            if self.metrics is not None:
+                self.metrics.observe_sample(rt, None, y, result)
             return
         rt.last_loss = result.loss
         if not rt.learner.binary:
@@ -125,7 +128,7 @@ class Engine:
         p = rt.settings.publish
         self.publish(rt.publish_topic, body, p.qos, p.retain)
         if self.metrics is not None:
-            self.metrics.observe_published(rt.name)
+            self.metrics.observe_published(rt.name, pred.value, low, high)
 
     def publish_model_info(self) -> None:
         """Retained description of each model beside its predictions, with the advisory notice."""
@@ -196,6 +199,8 @@ class Engine:
         source = rt.restore_good()
         rt.guard.after_restore()
         rt.learner.cut_learning_rate(rt.settings.guard.lr_factor)
+        if self.metrics is not None:
+            self.metrics.learning_rate_changed(rt.name, rt.learner.learning_rate)
         self.guard_trips[rt.name] = self.guard_trips.get(rt.name, 0) + 1
         self.log("warning", "guard_tripped", model=rt.name, reason=reason, detail=detail,
                  restored=source, learning_rate=rt.learner.learning_rate)
@@ -211,6 +216,8 @@ class Engine:
             self.metrics.drift_event(rt.name, event.source)
         if action.kind == "boost_lr":
             rt.learner.boost(action.lr_factor, action.samples)
+            if self.metrics is not None:
+                self.metrics.learning_rate_changed(rt.name, rt.learner.learning_rate)
         elif action.kind == "shrink_window":
             keep = max(rt.learner.training.batch_size, getattr(event, "since", 0) or action.samples)
             rt.learner.window.keep_newest(keep)
@@ -257,8 +264,11 @@ class Engine:
                     f"or restore the old network settings")
             self.log("info", "model_restored" if cid else "model_fresh", model=rt.name, id=cid,
                      samples=rt.learner.samples, architecture=rt.learner.net.architecture)
-            if cid and self.metrics is not None:
-                self.metrics.checkpoint_restored(rt.name, cid)
+            if self.metrics is not None:
+                if cid:
+                    self.metrics.checkpoint_restored(rt.name, cid)
+                if rt.store is not None:
+                    self.metrics.checkpoint_skipped_corrupt(rt.name, rt.store.skipped_corrupt)
 
     def apply_settings(self, new: Settings) -> list[str]:
         """Hot-apply what can change live; return refusals (the rest is applied)."""

@@ -19,8 +19,10 @@ The worker's calls (models and inputs named as in the config)::
     metrics.skipped(model, "stale"); metrics.guard_tripped(model, "loss_blowup")
     metrics.drift_event(model, source)                # source: "loss" or an input name
     metrics.checkpoint_saved(model, checkpoint_id, at); metrics.checkpoint_failed(model)
-    metrics.checkpoint_restored(model, checkpoint_id); metrics.checkpoint_skipped_corrupt(model)
+    metrics.checkpoint_restored(model, checkpoint_id)
+    metrics.checkpoint_skipped_corrupt(model, store.skipped_corrupt)   # the store's running total
     metrics.rolled_back(model, cause, checkpoint_id)  # cause: operator | guard | drift
+    metrics.learning_rate_changed(model, learning_rate)                # reload, boost, guard cut
     metrics.reload(result)                            # applied | invalid | partial
     metrics.transport(queue_depth=, queue_dropped=, connected=, reconnects=, publish_dropped=)
     server = serve(settings.metrics, metrics.registry)   # None when listen is null
@@ -82,6 +84,20 @@ def _codes(metric: Any, *bound: str) -> Callable[[str], Any]:
     return child
 
 
+class _Total:
+    """A counter fed from someone else's running total (link, queue, checkpoint store)."""
+
+    def __init__(self, child: Any) -> None:
+        self.child, self.last = child, 0
+
+    def sync(self, total: int) -> None:
+        """Advance by the growth since the last call; a total that went down restarted at 0."""
+        delta = total - self.last if total >= self.last else total
+        if delta:
+            self.child.inc(delta)
+        self.last = total
+
+
 class Metrics:
     """Every edgeprop metric, on a registry of its own."""
 
@@ -107,11 +123,10 @@ class Metrics:
         self._queue = g("inbound_queue_depth", "Messages waiting for the worker.")
         g("inbound_queue_capacity", "Size of the inbound queue.").set(queue_capacity)
         self._connected = g("broker_connected", "1 while the MQTT session is up.")
-        # Counters the transport keeps as plain totals; advanced by the difference.
-        self._totals = {k: [c(k, doc), 0] for k, doc in (
+        self._totals = [_Total(c(k, doc)) for k, doc in (
             ("inbound_dropped", "Messages lost because the inbound queue was full."),
             ("broker_reconnects", "Successful reconnections to the broker."),
-            ("publish_dropped", "Outgoing messages not sent (no session or too many unsent)."))}
+            ("publish_dropped", "Outgoing messages not sent (no session or too many unsent)."))]
         reloads = c("config_reloads", "Configuration reloads, by result.", "result")
         self._reloads = {res: reloads.labels(res) for res in RELOAD_RESULTS}
         g("start_time_seconds", "Unix time the daemon started.").set(clock())
@@ -154,13 +169,8 @@ class Metrics:
         """Copy the broker link's and inbound queue's own figures (running totals) in."""
         self._queue.set(queue_depth)
         self._connected.set(1 if connected else 0)
-        for key, total in (("inbound_dropped", queue_dropped), ("broker_reconnects", reconnects),
-                           ("publish_dropped", publish_dropped)):
-            slot = self._totals[key]
-            delta = total - slot[1] if total >= slot[1] else total   # a new link starts at 0
-            if delta:
-                slot[0].inc(delta)
-            slot[1] = total
+        for counter, total in zip(self._totals, (queue_dropped, reconnects, publish_dropped)):
+            counter.sync(total)
 
     def reload(self, result: str) -> None:
         """Count one reload: applied, invalid (nothing changed) or partial (some refused)."""
@@ -214,9 +224,13 @@ class Metrics:
         """Count a checkpoint loaded into the model."""
         self.model(model).checkpoint_restored(checkpoint_id)
 
-    def checkpoint_skipped_corrupt(self, model: str) -> None:
-        """Count a checkpoint passed over because it failed its checks."""
-        self.model(model).checkpoint_skipped_corrupt()
+    def checkpoint_skipped_corrupt(self, model: str, total: int) -> None:
+        """Copy the store's running total of checkpoints passed over as corrupt."""
+        self.model(model).checkpoint_skipped_corrupt(total)
+
+    def learning_rate_changed(self, model: str, learning_rate: float) -> None:
+        """Record a learning rate set outside a step (reload, drift boost, guard cut)."""
+        self.model(model).levels(learning_rate=learning_rate)
 
     def rolled_back(self, model: str, cause: str, checkpoint_id: str) -> None:
         """Count a return to an earlier checkpoint: operator, guard or drift."""
@@ -286,17 +300,16 @@ class ModelMetrics:
                               *(f.percentile.labels(name, str(p)) for p in RESIDUAL_PERCENTILES)]
         else:
             self._windowed = [f.log_loss.labels(*b), f.accuracy.labels(*b)]
-        self._coverage = f.coverage.labels(*b)
-        if coverage is not None:
-            f.coverage_goal.labels(*b).set(coverage)
+        self._coverage, self._coverage_goal = f.coverage.labels(*b), f.coverage_goal.labels(*b)
+        self._coverage_goal.set(math.nan if coverage is None else coverage)
         self._lr, self._wnorm, self._gnorm = (m.labels(*b) for m in (f.lr, f.wnorm, f.gnorm))
         self._loss_drift, self._loss_events = f.loss_drift.labels(*b), f.loss_events.labels(*b)
         self._shift = {i: f.shift.labels(name, i) for i in inputs}
         self._shift_events = {i: f.shift_events.labels(name, i) for i in inputs}
         self._drift = f.drift.labels(*b)
         self._ckpt_time = f.ckpt_time.labels(*b)
-        self._ckpt_fail, self._ckpt_restore, self._ckpt_corrupt = (
-            m.labels(*b) for m in (f.ckpt_fail, f.ckpt_restore, f.ckpt_corrupt))
+        self._ckpt_fail, self._ckpt_restore = f.ckpt_fail.labels(*b), f.ckpt_restore.labels(*b)
+        self._ckpt_corrupt = _Total(f.ckpt_corrupt.labels(*b))
         self._rollbacks = {c: f.rollbacks.labels(name, c) for c in ROLLBACK_CAUSES}
         self._last = {k: m.labels(*b) for k, m in f.last.items()}
         for child in (*self._loss, *self._windowed, self._coverage, self._lr, self._wnorm,
@@ -342,12 +355,14 @@ class ModelMetrics:
 
     def levels(self, *, weight_norm: Optional[float] = None, coverage: Optional[float] = None,
                loss_short: Optional[float] = None, loss_long: Optional[float] = None,
-               loss_drift: Optional[float] = None,
-               input_shift: Optional[dict[str, float]] = None) -> None:
+               loss_drift: Optional[float] = None, input_shift: Optional[dict[str, float]] = None,
+               learning_rate: Optional[float] = None,
+               coverage_target: Optional[float] = None) -> None:
         """Set the slow-moving figures that are given; leave the others as they are."""
         for child, value in ((self._wnorm, weight_norm), (self._coverage, coverage),
                              (self._loss[0], loss_short), (self._loss[1], loss_long),
-                             (self._loss_drift, loss_drift)):
+                             (self._loss_drift, loss_drift), (self._lr, learning_rate),
+                             (self._coverage_goal, coverage_target)):
             if value is not None:
                 child.set(value)
         for name, score in (input_shift or {}).items():
@@ -393,9 +408,9 @@ class ModelMetrics:
         self._ckpt_restore.inc()
         self._set_info(checkpoint_id)
 
-    def checkpoint_skipped_corrupt(self) -> None:
-        """Count a checkpoint passed over because it failed its checks."""
-        self._ckpt_corrupt.inc()
+    def checkpoint_skipped_corrupt(self, total: int) -> None:
+        """Copy the store's running total of checkpoints passed over as corrupt."""
+        self._ckpt_corrupt.sync(total)
 
     def rolled_back(self, cause: str, checkpoint_id: str) -> None:
         """Count a return to an earlier checkpoint by cause: operator, guard or drift."""

@@ -68,3 +68,4 @@ def _apply_model(engine: "Engine", m: ModelSettings) -> None:
     rt.publish_topic = engine.settings.publish_topic(m)
     if engine.metrics is not None:
         engine.metrics.learning_rate_changed(m.name, rt.learner.learning_rate)
+        engine.metrics.model(m.name).levels(coverage_target=m.interval.coverage)

@@ -51,7 +51,7 @@ class Service:
         self.env = dict(os.environ if env is None else env)
         self.flags = Flags()
         self.inbound = InboundQueue(settings.broker.queue_size)
-        self.metrics = Metrics(node=settings.node)
+        self.metrics = Metrics(node=settings.node, queue_capacity=settings.broker.queue_size)
         self.engine = Engine(settings, self._publish, log, self.metrics, clock,
                              stores=self._stores(settings))
         self.link: BrokerLink | None = None
@@ -81,7 +81,7 @@ class Service:
         worker = threading.Thread(target=self._worker, name="edgeprop-worker", daemon=True)
         self.link.start()
         self.log("info", "started", node=self.settings.node, models=len(self.engine.models),
-                 topics=len(topics), metrics=self.settings.metrics.listen,
+                 topics=len(topics), metrics=getattr(self.http, "url", None),
                  control=self.settings.control_socket)
         worker.start()
         while worker.is_alive():

@@ -283,14 +283,11 @@ TOP_ERRORS = [
     ({"checkpoints": {"keep": 0}}, "checkpoints.keep: 0 is out of range; allowed >= 1"),
     ({"checkpoints": {"every_s": 0}}, "checkpoints.every_s: 0.0 is out of range; allowed > 0"),
     ({"metrics": {"listen": "9740"}},
-     "metrics.listen: '9740' is not HOST:PORT with port 1..65535; e.g. '127.0.0.1:9740' or "
-     "'[::1]:9740' (null disables the endpoint)"),
+     "metrics.listen: '9740' is not HOST:PORT with port 0..65535; e.g. '127.0.0.1:9740' or "
+     "'[::1]:9740' (port 0 picks a free port and logs it; null disables the endpoint)"),
     ({"metrics": {"listen": "[::g]:9740"}},
-     "metrics.listen: '[::g]:9740' is not HOST:PORT with port 1..65535; e.g. '127.0.0.1:9740' or "
-     "'[::1]:9740' (null disables the endpoint)"),
-    ({"metrics": {"listen": "0.0.0.0:0"}},
-     "metrics.listen: '0.0.0.0:0' is not HOST:PORT with port 1..65535; e.g. '127.0.0.1:9740' or "
-     "'[::1]:9740' (null disables the endpoint)"),
+     "metrics.listen: '[::g]:9740' is not HOST:PORT with port 0..65535; e.g. '127.0.0.1:9740' or "
+     "'[::1]:9740' (port 0 picks a free port and logs it; null disables the endpoint)"),
     ({"metrics": {"basic_auth": {"username": "prom", "password": "x"}}},
      "metrics.basic_auth.password: an inline password is refused: put the password alone in a "
      "file only the daemon's user can read (chmod 600) and set password_file to its path\n"

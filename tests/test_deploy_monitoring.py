@@ -91,7 +91,7 @@ def populated_scrape() -> str:
         mm.checkpoint_saved("20261201T101500Z-000042", 1_733_000_000.0)
         mm.checkpoint_failed()
         mm.checkpoint_restored("20261201T101500Z-000042")
-        mm.checkpoint_skipped_corrupt()
+        mm.checkpoint_skipped_corrupt(1)
         mm.rolled_back("operator", "20261201T100000Z-000041")
     return generate_latest(m.registry).decode()
 

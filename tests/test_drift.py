@@ -139,6 +139,16 @@ def test_at_most_one_false_alarm_in_100000_stationary_samples(detector):
     assert len(loss_events(s, r)) <= 1
 
 
+@pytest.mark.parametrize("detector", ["page_hinkley", "adwin"])
+def test_a_model_that_learns_raises_no_alarm(detector):
+    # residual spread falls from 1 to 0.14 (time constant 500 samples), then holds: the lagging
+    # loss reference first over-, then re-estimates the loss; without re-arming this alarmed
+    s = replace(DriftSettings(), detector=detector)
+    rng = np.random.default_rng(15)
+    r = rng.standard_normal(30_000) * np.sqrt(0.02 + 0.98 * np.exp(-np.arange(30_000) / 500))
+    assert loss_events(s, r) == []
+
+
 def test_detector_none_never_alarms():
     r = np.r_[np.zeros(100), np.full(500, 10.0)]
     assert loss_events(replace(DriftSettings(), detector="none"), r) == []

@@ -66,7 +66,7 @@ def test_worker_calls_reach_the_scrape(pump: Metrics) -> None:
     pump.checkpoint_saved("bearing_temp", "20261201T101500Z-000042", 1_733_000_100.0)
     pump.checkpoint_failed("bearing_temp")
     pump.checkpoint_restored("bearing_temp", "20261201T101500Z-000042")
-    pump.checkpoint_skipped_corrupt("bearing_temp")
+    pump.checkpoint_skipped_corrupt("bearing_temp", 1)
     pump.rolled_back("bearing_temp", "guard", "20261201T100000Z-000041")
     pump.guard_tripped("bearing_temp", "loss_blowup")
     s = samples(pump)
@@ -117,14 +117,25 @@ def test_worker_calls_reach_the_scrape(pump: Metrics) -> None:
                  python=platform.python_version()) == 1
 
 
-def test_transport_totals_become_counters(pump: Metrics) -> None:
+def test_running_totals_become_counters(pump: Metrics) -> None:
     for dropped, reconnects in ((0, 0), (5, 1), (5, 1), (9, 3), (2, 0)):   # last: a new link
         pump.transport(queue_depth=0, queue_dropped=dropped, connected=False,
                        reconnects=reconnects, publish_dropped=0)
+    for corrupt in (0, 2, 2, 3):
+        pump.checkpoint_skipped_corrupt("bearing_temp", corrupt)
     s = samples(pump)
     assert value(s, "edgeprop_inbound_dropped_total") == 9 + 2
     assert value(s, "edgeprop_broker_reconnects_total") == 3
     assert value(s, "edgeprop_broker_connected") == 0
+    assert value(s, "edgeprop_checkpoint_skipped_corrupt_total", model="bearing_temp") == 3
+
+
+def test_reload_updates_rate_and_band_target(pump: Metrics) -> None:
+    pump.learning_rate_changed("bearing_temp", 0.003)
+    pump.model("bearing_temp").levels(coverage_target=0.95)
+    s = samples(pump)
+    assert value(s, "edgeprop_learning_rate", model="bearing_temp") == 0.003
+    assert value(s, "edgeprop_interval_coverage_target_ratio", model="bearing_temp") == 0.95
 
 
 def test_unknown_values_are_gaps_not_zeros(pump: Metrics) -> None:
