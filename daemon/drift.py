@@ -36,7 +36,8 @@ LARGE_LOSS = 4.0                # loss ratio mapped to u = 1; 2-sigma of a squar
 LOSS_REFERENCE_SAMPLES = 1000   # time constant of the loss reference (common practice, no source)
 LOSS_FLOOR = 1e-9               # reference floor for a perfect fit (common practice, no source)
 CHANGE_SEARCH = 2048            # newest u values searched for the change point
-REARM_RATIO = 0.8               # reference fall that re-arms the detector (tuned on learning curves)
+REARM_RATIO = 0.9               # reference fall that re-arms the detector (tuned on learning curves)
+REARM_KEEP = 200                # newest u values a re-armed detector keeps (common practice, no source)
 ADWIN_BUCKETS = 5               # buckets per size class, "M" in Bifet & Gavalda 2007
 ADWIN_CHECK_EVERY = 16          # samples between cut checks (pure-Python cost; see Adwin)
 ADWIN_MIN_SIDE = 5              # fewest samples on either side of a cut (common practice, no source)
@@ -315,10 +316,13 @@ class RelativeLoss:
 
         A model that gets better leaves the lagging reference above its loss for a while,
         so u dips and later climbs back: to a detector that remembers the dip this looks
-        like an increase. Re-arming the detector at each such fall forgets the dip.
+        like an increase. So at each such fall the detector is re-armed with only the
+        newest ``REARM_KEEP`` values (the history is cut to them too).
         """
         if self.n > self.warmup and self.reference < REARM_RATIO * self.armed:
-            self.armed, self.kept = self.reference, 0
+            keep = self.newest()[-REARM_KEEP:]
+            self.history[:keep.size] = keep
+            self.armed, self.kept = self.reference, keep.size
             return True
         return False
 
@@ -540,9 +544,9 @@ class DriftMonitor:
         event = None
         if math.isfinite(loss):
             u = self.relative.update(loss)
-            if self.relative.improved():
-                self.detector.reset()
-            if u is not None and self.detector.update(u):
+            if u is not None and self.relative.improved():
+                self._rearm()
+            elif u is not None and self.detector.update(u):
                 event = DriftEvent("loss", float(self.detector.alarm_score), self.relative.change_age())
         fired = []
         for name, shift, value in zip(self.input_names, self.inputs, x_raw):
@@ -555,6 +559,13 @@ class DriftMonitor:
         if event is not None:
             self._act(event)
         return event
+
+    def _rearm(self) -> None:
+        """Restart the detector on the newest values only (the model got better)."""
+        self.detector.reset()
+        for u in self.relative.newest().tolist():
+            if self.detector.update(u):
+                self.detector.reset()      # an increase inside the kept values: drop it too
 
     def _act(self, event: DriftEvent) -> None:
         self.events += 1

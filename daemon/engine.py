@@ -12,7 +12,7 @@ import math
 import time
 from typing import Callable, Optional
 
-import numpy as np
+
 
 from .errors import CheckpointError, PayloadError, SampleSkipped
 from .learner import Diverged, Prediction

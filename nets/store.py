@@ -9,6 +9,7 @@ from __future__ import annotations
 import hashlib
 import io
 import json
+import os
 import zipfile
 from typing import IO, Any, Mapping, Union
 
