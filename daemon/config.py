@@ -307,6 +307,9 @@ def load_config(path: str) -> S.Settings:
         raise ConfigError([f"{where}: not valid YAML: {exc.problem or exc.context}"]) from None
     except yaml.YAMLError as exc:
         raise ConfigError([f"{path}: not valid YAML: {exc}"]) from None
+    except RecursionError:     # the YAML composer recurses once per nesting level
+        raise ConfigError([f"{path}: nested too deeply to read (lists or mappings inside each "
+                           f"other hundreds of levels down); no edgeprop config needs that"]) from None
     finally:
         if loader is not None:
             loader.dispose()
@@ -317,6 +320,9 @@ def load_config(path: str) -> S.Settings:
         settings = parse_config(raw, os.path.dirname(os.path.abspath(path)))
     except ConfigError as exc:
         raise ConfigError(repeated + exc.problems) from None
+    except RecursionError:     # deep structures under a key that is validated or shown
+        raise ConfigError(repeated + [f"{path}: nested too deeply to validate; no edgeprop "
+                                      f"config needs lists or mappings that deep"]) from None
     if repeated:
         raise ConfigError(repeated)
     return settings

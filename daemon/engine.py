@@ -99,12 +99,18 @@ class Engine:
         rt.last_loss = result.loss
         if not rt.learner.binary:
             rt.interval.update(y, pred.value)
+        rt.note_sample_time(self.clock())
         event = rt.drift.update(result.loss, x[rt.lag0])
         if event is not None:
-            self._on_drift(rt, event, t)
+            self._on_drift(rt, event)
         trip = rt.guard.observe(result.loss)
-        if trip is not None:
-            self._trip_guard(rt, trip, f"short loss {rt.guard.short:.4g} vs long-run {rt.guard.long:.4g}")
+        if trip == "loss_blowup" and not rt.good_state_fits(rt.guard.bar, rt.settings.guard.blowup_samples):
+            # the last good state is as wrong on these samples: the plant moved, not the model
+            self.log("warning", "loss_level_changed", model=rt.name, detail=rt.guard.describe(),
+                     action="guard relearns the normal loss level; weights and learning rate kept")
+            rt.guard.restart()
+        elif trip is not None:
+            self._trip_guard(rt, trip, rt.guard.describe())
         if self.metrics is not None:
             self.metrics.observe_sample(rt, pred, y, result)
 
@@ -196,18 +202,24 @@ class Engine:
                       reason=exc.reason, detail=str(exc))
 
     def _trip_guard(self, rt: ModelRuntime, reason: str, detail: str) -> None:
+        # The restored state carries the multiplier of its day; each trip must cut further
+        # than the last, or a rate that always diverges would loop at the same value.
+        multiplier = rt.learner.lr_multiplier
         source = rt.restore_good()
         rt.guard.after_restore()
+        rt.learner.lr_multiplier = min(multiplier, rt.learner.lr_multiplier)
         rt.learner.cut_learning_rate(rt.settings.guard.lr_factor)
         if self.metrics is not None:
             self.metrics.learning_rate_changed(rt.name, rt.learner.learning_rate)
+            if source not in ("memory", "fresh"):
+                self.metrics.rolled_back(rt.name, "guard", source)
         self.guard_trips[rt.name] = self.guard_trips.get(rt.name, 0) + 1
         self.log("warning", "guard_tripped", model=rt.name, reason=reason, detail=detail,
                  restored=source, learning_rate=rt.learner.learning_rate)
         if self.metrics is not None:
             self.metrics.guard_tripped(rt.name, reason)
 
-    def _on_drift(self, rt: ModelRuntime, event, t: float) -> None:
+    def _on_drift(self, rt: ModelRuntime, event) -> None:
         action = rt.drift.response
         self.drift_events[rt.name] = self.drift_events.get(rt.name, 0) + 1
         self.log("warning", "drift_detected", model=rt.name, source=event.source,
@@ -222,15 +234,20 @@ class Engine:
             keep = max(rt.learner.training.batch_size, getattr(event, "since", 0) or action.samples)
             rt.learner.window.keep_newest(keep)
         elif action.kind == "restore" and rt.store is not None:
-            since = getattr(event, "since", 0) or 0
-            cid = rt.store.id_before(t - since * self._sample_period(rt))
-            if cid is not None:
-                self.rollback(rt.name, cid, cause="drift")
+            self._restore_before_change(rt, max(int(getattr(event, "since", 0) or 0), 1))
 
-    @staticmethod
-    def _sample_period(rt: ModelRuntime) -> float:
-        """Rough seconds per target sample, to turn a detection delay into a time."""
-        return 1.0
+    def _restore_before_change(self, rt: ModelRuntime, since: int) -> None:
+        """Roll back to the newest checkpoint saved before the first of the ``since`` post-change samples."""
+        changed_at = rt.time_of(since)
+        cid = rt.store.id_before(changed_at) if changed_at is not None else None
+        if cid is None:
+            self.log("warning", "drift_restore_skipped", model=rt.name, since=since,
+                     reason="no checkpoint from before the change" if changed_at is not None
+                     else "the change is older than the samples remembered since start or restore")
+            return
+        monitor = rt.drift          # keeps watching the live stream: flag up, references rebased
+        self.rollback(rt.name, cid, cause="drift")
+        rt.drift = monitor
 
     # -- operator actions (between two messages) ----------------------------------------
     def rollback(self, model: str, cid: str, cause: str = "operator") -> str:

@@ -1,10 +1,18 @@
 """Divergence guard: notice a model that is blowing up before it publishes nonsense.
 
-Two moving averages of the per-sample loss are kept: a short one that reacts
-within tens of samples and a long one that stands for the model's normal
-level. A short level above ``blowup_factor`` times the long one for
-``blowup_samples`` samples in a row trips the guard; so does any non-finite
-number (handled by the caller, which sees it first).
+The guard trips when the per-sample prequential loss stays above ``blowup_factor``
+times its long-run level for ``blowup_samples`` samples in a row, and on any
+non-finite loss (the caller also trips it on non-finite weights or outputs, which
+it sees first). Counting single samples, not a moving average, is deliberate: one
+wild reading (a transmitter glitch) may be a thousand times the usual loss, and an
+average would carry it over the bar for many samples; a run of ``n`` keeps any burst
+shorter than ``n`` from ever tripping, however large. A diverging network grows its
+error sample after sample, so it keeps the run going.
+
+The long-run level learns only from samples under the bar, so a blow-up cannot raise
+its own bar. A short moving average is kept beside it for the metrics and status.
+Both averages start as plain running means (bias-free) until they reach their time
+constants, so the first prediction's loss does not dominate the long level.
 """
 from __future__ import annotations
 
@@ -17,6 +25,8 @@ from .settings import GuardSettings
 SHORT_ALPHA = 0.1      # ~10-sample memory (common practice, no source)
 LONG_ALPHA = 0.002     # ~500-sample memory (common practice, no source)
 MIN_SEEN = 100         # the long level means nothing before this many samples
+LEVEL_FLOOR = 1e-12    # a perfect fit still leaves a bar above zero
+REASONS = ("non_finite", "loss_blowup")   # trip reasons, as counted in the metrics
 
 
 class DivergenceGuard:
@@ -26,32 +36,48 @@ class DivergenceGuard:
         self.settings = settings
         self.short = 0.0
         self.long = 0.0
-        self.seen = 0
-        self.run = 0
+        self.seen = 0          # finite losses observed
+        self.run = 0           # samples in a row above the bar
+        self.under = 0         # samples the long level has learned from
 
     def __repr__(self) -> str:
-        return f"DivergenceGuard(short={self.short:.4g}, long={self.long:.4g}, seen={self.seen})"
+        return (f"DivergenceGuard(short={self.short:.4g}, long={self.long:.4g}, "
+                f"seen={self.seen}, run={self.run})")
+
+    @property
+    def bar(self) -> float:
+        """Loss above which a sample counts towards a blow-up."""
+        return self.settings.blowup_factor * max(self.long, LEVEL_FLOOR)
 
     def observe(self, loss: float) -> str | None:
-        """Take one sample's loss; return a trip reason or None."""
+        """Take one sample's loss; return a trip reason ("non_finite", "loss_blowup") or None."""
         if not math.isfinite(loss):
             return "non_finite"
-        if self.seen == 0:
-            self.short = self.long = loss
-        else:
-            self.short += SHORT_ALPHA * (loss - self.short)
         self.seen += 1
+        self.short += (loss - self.short) * max(SHORT_ALPHA, 1.0 / self.seen)
         s = self.settings
-        tripped = (s.enabled and self.seen > MIN_SEEN
-                   and self.short > s.blowup_factor * max(self.long, 1e-12))
-        self.run = self.run + 1 if tripped else 0
-        if not tripped:
-            # the long level learns only from normal samples, so a blow-up cannot raise its own bar
-            self.long += LONG_ALPHA * (loss - self.long) if self.seen > 1 else 0.0
+        above = s.enabled and self.seen > MIN_SEEN and loss > self.bar
+        if above:
+            self.run += 1
+        else:
+            self.run = 0
+            self.under += 1
+            self.long += (loss - self.long) * max(LONG_ALPHA, 1.0 / self.under)
         if self.run >= s.blowup_samples:
             self.run = 0
             return "loss_blowup"
         return None
+
+    def describe(self) -> str:
+        """Why a blow-up trip happened, for the log."""
+        s = self.settings
+        return (f"loss above {s.blowup_factor:g} x its long-run level {self.long:.4g} "
+                f"for {s.blowup_samples} samples in a row")
+
+    def restart(self) -> None:
+        """Forget the normal level and learn it afresh (after a change of the plant itself)."""
+        self.short = self.long = 0.0
+        self.seen = self.run = self.under = 0
 
     def after_restore(self) -> None:
         """Start the short level afresh from the long one after a restore."""
@@ -59,8 +85,13 @@ class DivergenceGuard:
         self.run = 0
 
     def state(self) -> dict[str, np.ndarray]:
-        return {"levels": np.asarray([self.short, self.long]), "counts": np.asarray([self.seen, self.run])}
+        """Plain arrays for a checkpoint."""
+        return {"levels": np.asarray([self.short, self.long]),
+                "counts": np.asarray([self.seen, self.run, self.under])}
 
     def load_state(self, arrays: dict[str, np.ndarray]) -> None:
+        """Restore from ``state`` output (older two-count states included)."""
         self.short, self.long = (float(v) for v in arrays["levels"])
-        self.seen, self.run = (int(v) for v in arrays["counts"])
+        counts = [int(v) for v in np.asarray(arrays["counts"]).ravel()]
+        self.seen, self.run = counts[0], counts[1]
+        self.under = counts[2] if len(counts) > 2 else self.seen

@@ -22,12 +22,17 @@ class Inbound:
 
 
 class InboundQueue:
-    """Thread-safe FIFO of at most ``capacity`` items; a full queue drops its oldest item."""
+    """Thread-safe FIFO of at most ``capacity`` items (and ``max_bytes`` of payload); drops oldest."""
 
-    def __init__(self, capacity: int) -> None:
+    def __init__(self, capacity: int, max_bytes: int | None = None) -> None:
         if not isinstance(capacity, int) or isinstance(capacity, bool) or capacity < 1:
             raise ValueError(f"inbound queue capacity must be an integer >= 1, got {capacity!r}")
+        if max_bytes is not None and max_bytes < 1:
+            raise ValueError(f"inbound queue max_bytes must be >= 1 or None, got {max_bytes!r}")
         self.capacity = capacity
+        # A count alone does not bound memory: 10,000 payloads of 60 kB each are 600 MB.
+        self.max_bytes = max_bytes
+        self.bytes = 0            # payload bytes waiting now
         self.dropped = 0          # items discarded because the queue was full (read by metrics)
         self._items: deque[Inbound] = deque()
         self._cond = threading.Condition(threading.Lock())
@@ -42,12 +47,14 @@ class InboundQueue:
         return len(self._items)
 
     def put(self, item: Inbound) -> None:
-        """Append ``item``; if full, discard the oldest item first. Never blocks on the consumer."""
+        """Append ``item``; if over either bound, discard the oldest items. Never blocks on the consumer."""
         with self._cond:
-            if len(self._items) >= self.capacity:
-                self._items.popleft()
-                self.dropped += 1
             self._items.append(item)
+            self.bytes += len(item.payload)
+            while len(self._items) > self.capacity or (
+                    self.max_bytes is not None and self.bytes > self.max_bytes and len(self._items) > 1):
+                self.bytes -= len(self._items.popleft().payload)
+                self.dropped += 1
             self._cond.notify()
 
     def get(self, timeout: float) -> Inbound | None:
@@ -55,7 +62,9 @@ class InboundQueue:
         with self._cond:
             if not self._wait_locked(timeout):
                 return None
-            return self._items.popleft()
+            item = self._items.popleft()
+            self.bytes -= len(item.payload)
+            return item
 
     def get_many(self, max_items: int, timeout: float) -> list[Inbound]:
         """Up to ``max_items`` oldest items taken under one lock; empty on timeout or ``wake()``."""
@@ -65,7 +74,9 @@ class InboundQueue:
             if not self._wait_locked(timeout):
                 return []
             n = min(max_items, len(self._items))
-            return [self._items.popleft() for _ in range(n)]
+            items = [self._items.popleft() for _ in range(n)]
+            self.bytes -= sum(len(item.payload) for item in items)
+            return items
 
     def wake(self) -> None:
         """Make a waiting (or the next) ``get``/``get_many`` return at once, e.g. on a signal."""

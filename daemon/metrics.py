@@ -57,6 +57,7 @@ from prometheus_client.exposition import ThreadingWSGIServer
 
 from daemon import __version__
 from daemon.errors import ConfigError, EdgepropError
+from daemon.guard import REASONS as GUARD_REASONS
 from daemon.settings import MetricsSettings
 
 PREFIX = "edgeprop_"
@@ -294,6 +295,10 @@ class ModelMetrics:
         self._samples, self._steps = f.samples.labels(*b), f.steps.labels(*b)
         self._published = f.published.labels(*b)
         self._skipped, self._guard = _codes(f.skipped, name), _codes(f.guard, name)
+        for reason in GUARD_REASONS:
+            # exported at 0 from the start: increase() over a series that appears at 1 is 0,
+            # so an alert on the first trip would never fire
+            self._guard(reason)
         self._loss = (f.loss.labels(name, "short"), f.loss.labels(name, "long"))
         if task == "regression":
             self._windowed = [f.rmse.labels(*b),

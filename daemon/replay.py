@@ -9,24 +9,29 @@ from __future__ import annotations
 import argparse
 import json
 import math
+import os
 import sys
 import time
 from dataclasses import dataclass, field
-from typing import Callable, Optional
+from typing import IO, Callable, Optional
 
 import numpy as np
 
 from .capture import BadLine, read_capture
 from .config import load_config
 from .engine import Engine
+from .errors import EdgepropError
 from .logs import Log
 from .settings import Settings
+
+PROGRESS_EVERY = 2000       # lines between progress updates
 
 
 @dataclass
 class ReplaySummary:
     lines: int = 0
-    bad_lines: dict[str, int] = field(default_factory=dict)
+    bad_lines: dict[str, int] = field(default_factory=dict)     # by kind, see bad_line_kind
+    first_bad: Optional[str] = None
     published: int = 0
     seconds: float = 0.0
     rejects: dict[str, int] = field(default_factory=dict)
@@ -37,7 +42,9 @@ class ReplaySummary:
         out = [f"replayed {self.lines} messages in {self.seconds:.2f} s ({rate:,.0f} msg/s); "
                f"published {self.published} predictions"]
         if self.bad_lines:
-            out.append("bad capture lines: " + ", ".join(f"{k}={v}" for k, v in sorted(self.bad_lines.items())))
+            out.append(f"skipped {sum(self.bad_lines.values())} bad capture lines: "
+                       + "; ".join(f"{k}: {v}" for k, v in sorted(self.bad_lines.items()))
+                       + f" (first: {self.first_bad})")
         if self.rejects:
             out.append("rejected payloads: " + ", ".join(f"{k}={v}" for k, v in sorted(self.rejects.items())))
         for name, m in self.models.items():
@@ -48,6 +55,11 @@ class ReplaySummary:
                        f"{m['drift_events']}, guard trips {m['guard_trips']}")
         out.append("Predictions are advisory only; never a protective function.")
         return "\n".join(out)
+
+
+def bad_line_kind(reason: str) -> str:
+    """The reason of a bad capture line without its line-specific detail, for counting."""
+    return reason.split(" (", 1)[0].split(", got ", 1)[0]
 
 
 class _CaptureClock:
@@ -75,23 +87,32 @@ def replay(settings: Settings, capture_path: str, sink: Callable[[dict], None],
         return True
 
     engine: Engine | None = None
+    internal_errors = 0
     started = time.perf_counter()
     for item in read_capture(capture_path):
         if isinstance(item, BadLine):
-            summary.bad_lines[item.reason] = summary.bad_lines.get(item.reason, 0) + 1
+            key = bad_line_kind(item.reason)
+            summary.bad_lines[key] = summary.bad_lines.get(key, 0) + 1
+            if summary.first_bad is None:
+                summary.first_bad = f"line {item.line_no}: {item.reason}"
             continue
         clock.now = item.t
         if engine is None:
             engine = Engine(settings, publish, log or Log("warning"), None, clock)
-        engine.handle(item.topic, item.payload, item.t)
+        try:
+            engine.handle(item.topic, item.payload, item.t)
+        except Exception:       # as run's worker does: count it and go on (see service._handle_one)
+            internal_errors += 1
         engine.tick(item.t)
         summary.lines += 1
-        if progress is not None and summary.lines % 2000 == 0:
+        if progress is not None and summary.lines % PROGRESS_EVERY == 0:
             progress(summary.lines)
     summary.seconds = time.perf_counter() - started
     if engine is None:
         engine = Engine(settings, publish, log or Log("warning"), None, clock)
     summary.rejects = dict(engine.rejects)
+    if internal_errors:
+        summary.rejects["internal_error"] = internal_errors
     return summary, engine
 
 
@@ -119,27 +140,56 @@ def score_messages(messages: list[dict], engine: Engine) -> dict[str, dict]:
 def run_replay(args: argparse.Namespace) -> int:
     """``edgeprop replay``: write published messages as JSON lines and print a summary."""
     settings = load_config(args.config)
+    if not os.path.isfile(args.capture):
+        raise EdgepropError(f"--capture {args.capture}: no such file")
     messages: list[dict] = []
-    progress = _progress_bar() if sys.stderr.isatty() else None
+    progress = ProgressBar(count_lines(args.capture), sys.stderr) if sys.stderr.isatty() else None
     with open(args.out, "w", encoding="utf-8") as out:
         def sink(msg: dict) -> None:
             messages.append(msg)
             out.write(json.dumps(msg, separators=(",", ":")) + "\n")
         summary, engine = replay(settings, args.capture, sink, progress=progress)
     if progress is not None:
-        sys.stderr.write("\n")
+        progress.finish(summary.lines)
     summary.models = score_messages(messages, engine)
     print(summary.text())
     print(f"messages written to {args.out}")
     if args.report:
+        if not messages:
+            print("no predictions were published; no plot written")
+            return 0
         from .report import write_report
         png, txt = write_report(messages, args.report, f"replay of {args.capture}")
         print(f"plot: {png}\nsummary: {txt}")
     return 0
 
 
-def _progress_bar() -> Callable[[int], None]:
-    def show(n: int) -> None:
-        sys.stderr.write(f"\rreplayed {n:,} messages")
-        sys.stderr.flush()
-    return show
+def count_lines(path: str) -> int:
+    """Newlines in a file, read in large binary blocks (cheap next to the replay itself)."""
+    n = 0
+    with open(path, "rb") as f:
+        while block := f.read(1 << 20):
+            n += block.count(b"\n")
+    return n
+
+
+class ProgressBar:
+    """``[#####.....]  50%  12,000 / 24,000 lines`` redrawn in place on a terminal."""
+
+    WIDTH = 30
+
+    def __init__(self, total: int, stream: IO[str]) -> None:
+        self.total, self.stream = max(total, 1), stream
+        self.started = time.perf_counter()
+
+    def __call__(self, done: int) -> None:
+        frac = min(1.0, done / self.total)
+        bar = "#" * int(frac * self.WIDTH) + "." * (self.WIDTH - int(frac * self.WIDTH))
+        rate = done / max(time.perf_counter() - self.started, 1e-9)
+        self.stream.write(f"\r[{bar}] {frac:4.0%}  {done:,} / {self.total:,} lines  {rate:,.0f} msg/s")
+        self.stream.flush()
+
+    def finish(self, done: int) -> None:
+        self(max(done, self.total))
+        self.stream.write("\n")
+        self.stream.flush()

@@ -21,8 +21,10 @@ from .drift import DriftMonitor
 from .errors import CheckpointError
 from .guard import DivergenceGuard
 from .intervals import ConformalInterval
-from .learner import ModelLearner
+from .learner import Diverged, ModelLearner
 from .settings import ModelSettings
+
+TIME_RING = 4096    # scored samples whose processing time is remembered (>= drift.CHANGE_SEARCH)
 
 
 class ModelRuntime:
@@ -44,6 +46,8 @@ class ModelRuntime:
         self.last_tick: float | None = None
         self.lag0 = self._lag0_columns(settings)
         self.last_loss = float("nan")
+        self.seen_at = np.zeros(TIME_RING)   # worker clock when each recent scored sample was handled
+        self.seen_n = 0
 
     def __repr__(self) -> str:
         return f"ModelRuntime({self.name!r}, samples={self.learner.samples}, checkpoint={self.checkpoint_id})"
@@ -56,6 +60,26 @@ class ModelRuntime:
             cols.append(at)
             at += len(inp.lags_s)
         return np.asarray(cols, np.int64)
+
+    # -- when samples were handled -------------------------------------------
+    def note_sample_time(self, now: float) -> None:
+        """Remember when the worker handled a scored sample (the drift detector counts these)."""
+        self.seen_at[self.seen_n % TIME_RING] = now
+        self.seen_n += 1
+
+    def time_of(self, samples_back: int) -> float | None:
+        """Worker time of the sample ``samples_back`` scored samples ago (1 = the newest).
+
+        None when it is not remembered: older than the ring, or from before a restore.
+        On the checkpoint store's clock, so ``store.id_before(time_of(k))`` is the newest
+        checkpoint holding none of the newest ``k`` samples.
+        """
+        if samples_back < 1 or samples_back > min(self.seen_n, TIME_RING):
+            return None
+        return float(self.seen_at[(self.seen_n - samples_back) % TIME_RING])
+
+    def _forget_sample_times(self) -> None:
+        self.seen_n = 0
 
     # -- state --------------------------------------------------------------
     def state_arrays(self) -> dict[str, np.ndarray]:
@@ -84,6 +108,7 @@ class ModelRuntime:
         self.assembler, self.drift = parts["align"], parts["drift"]
         self.interval, self.guard = parts["interval"], parts["guard"]
         self.good = dict(arrays)
+        self._forget_sample_times()       # the restored detectors count from the checkpoint
 
     def meta(self, reason: str) -> dict:
         return {"model": self.name, "samples": self.learner.samples,
@@ -136,7 +161,30 @@ class ModelRuntime:
             self.load_arrays(self.good)
             return self.checkpoint_id or "memory"
         self.learner = ModelLearner(self.settings)
+        self.guard = DivergenceGuard(self.settings.guard)    # a new model has no normal level yet
+        self._forget_sample_times()
         return "fresh"
+
+    def good_state_fits(self, bar: float, n: int) -> bool:
+        """True when the last good state's mean loss on the newest ``n`` samples is under ``bar``.
+
+        Tells a diverging model (the good state still fits the data: restore it) from a
+        changed plant (the good state is as wrong as the running one: restoring would only
+        throw learning away). Losses are in the good state's own standardised units, close
+        to the running model's as the scalers move slowly.
+        """
+        if self.good is None:
+            return False
+        probe = ModelLearner(self.settings)
+        probe.load_arrays(dict(self.good))
+        x, y = self.learner.window.newest(n)
+        losses = []
+        for xi, yi in zip(x, y[:, 0]):
+            try:
+                losses.append(probe.sample_loss(probe.predict(xi), float(yi)))
+            except Diverged:
+                return False
+        return bool(losses) and float(np.mean(losses)) <= bar
 
     def status(self) -> dict:
         lr = self.learner

@@ -46,7 +46,7 @@ constant, so friction power proportional to speed). The wear fault: from
 ``wear_growth_per_h`` per hour. Integrated exactly for inputs held over a step:
 T <- T + (T_ss - T) * (1 - exp(-dt/tau)).
 
-Every published reading carries Gaussian sensor noise. All randomness comes
+Every published reading carries Gaussian sensor noise and its sim-epoch time. All randomness comes
 from one ``numpy.random.Generator``; the same seed gives the same readings.
 """
 from __future__ import annotations
@@ -263,9 +263,8 @@ class StopFlag(Protocol):
 class SimClock:
     """Sim epoch time running ``speed`` times faster than ``clock`` from the moment it is made.
 
-    Give the daemon this clock in the demo: bare-number inputs are stamped on
-    arrival, and the bearing temperature carries a sim-epoch ``ts``; both must
-    be on the same time axis for the as-of alignment to pair them.
+    For tools that need "now" on the simulated time axis (the demo's view reads
+    sim time from the messages instead; every reading carries its own ``ts``).
     """
 
     def __init__(self, start_t: float, speed: float, clock: Callable[[], float]) -> None:
@@ -277,6 +276,22 @@ class SimClock:
 
 
 INPUT_TOPICS = (("speed", "speed_rpm"), ("flow", "flow_m3h"), ("current", "current_a"), ("ambient", "ambient_c"))
+TARGET_TOPIC = ("bearing_temp", "bearing_c")
+
+
+def reading_messages(r: dict[str, float], node_prefix: str) -> list[tuple[str, bytes]]:
+    """One step's readings as MQTT messages: inputs first, then the bearing temperature.
+
+    Every payload is ``{"value": v, "ts": t}`` with the sim-epoch time, because
+    the simulator runs faster than real time: arrival times would not line up
+    with simulated time, and the daemon aligns inputs to the target by ``ts``.
+    """
+    ts = round(r["t"], 3)
+    out = []
+    for leaf, key in (*INPUT_TOPICS, TARGET_TOPIC):
+        body = {"value": round(r[key], 2), "ts": ts}
+        out.append((f"{node_prefix}/{leaf}", json.dumps(body).encode()))
+    return out
 
 
 def publish_loop(client_publish: Callable[[str, bytes], None], station: PumpStation,
@@ -286,8 +301,7 @@ def publish_loop(client_publish: Callable[[str, bytes], None], station: PumpStat
     """Publish the station's readings paced at ``speed`` simulated seconds per real second; return steps.
 
     ``duration_s`` is simulated seconds (None: until ``stop_event``); ``speed``
-    = inf publishes as fast as possible. Inputs go out as bare numbers before the
-    bearing temperature, a JSON object ``{"value", "ts"}`` with the sim-epoch time.
+    = inf publishes as fast as possible. Payloads as in ``reading_messages``.
     """
     if not speed > 0:
         raise ValueError(f"speed must be > 0 simulated seconds per real second, got {speed!r}")
@@ -300,10 +314,23 @@ def publish_loop(client_publish: Callable[[str, bytes], None], station: PumpStat
             if stop_event is not None and stop_event.is_set():
                 return done
             sleep(min(wait, 0.25))
-        r = station.step()
-        for leaf, key in INPUT_TOPICS:
-            client_publish(f"{node_prefix}/{leaf}", f"{r[key]:.2f}".encode())
-        body = {"value": round(r["bearing_c"], 2), "ts": round(r["t"], 3)}
-        client_publish(f"{node_prefix}/bearing_temp", json.dumps(body).encode())
+        for topic, payload in reading_messages(station.step(), node_prefix):
+            client_publish(topic, payload)
         done += 1
     return done
+
+
+def write_capture(path: str, station: PumpStation, duration_s: float, node_prefix: str = "site/p1") -> int:
+    """Write ``duration_s`` simulated seconds of readings as a capture file (arrival = sim time); return lines.
+
+    What ``record`` would have written had the station published in real time:
+    handy for trying ``replay`` and ``tune`` without a broker.
+    """
+    from .capture import CaptureWriter
+    steps = int(round(duration_s / station.dt_s))
+    with CaptureWriter(path, overwrite=True) as writer:
+        for _ in range(steps):
+            r = station.step()
+            for topic, payload in reading_messages(r, node_prefix):
+                writer.write(r["t"], topic, payload)
+        return writer.lines

@@ -17,11 +17,11 @@ from typing import Sequence
 import numpy as np
 
 from .config import load_config
-from .errors import ConfigError
+from .errors import ConfigError, EdgepropError
 from .replay import replay
 from .settings import Settings
 
-WINDOWS = 10        # the worst-window error uses a tenth of the predictions per window
+WINDOWS = 10        # the worst moving window spans a tenth of the predictions
 
 
 @dataclasses.dataclass
@@ -57,22 +57,30 @@ def _errors(messages: list[dict], binary: bool) -> np.ndarray:
     return np.asarray([m["residual"] for m in scored], float) ** 2
 
 
+def worst_window(err: np.ndarray, size: int) -> float:
+    """Largest mean of ``size`` consecutive per-prediction errors (every start, not just blocks)."""
+    if not np.all(np.isfinite(err)):
+        return math.inf
+    c = np.concatenate([[0.0], np.cumsum(err, dtype=np.float64)])
+    return float(np.max((c[size:] - c[:-size]) / size))
+
+
 def evaluate(config_path: str, capture: str, learning_rate: float, batch_size: int | None) -> Candidate:
     """Replay one candidate; runs in a worker process."""
     settings = with_training(load_config(config_path), learning_rate, batch_size)
     messages: list[dict] = []
-    _, engine = replay(settings, capture, messages.append, log=lambda *a, **k: None)
+    # a rate too large overflows on its way to the guard; the divergence count says so, not warnings
+    with np.errstate(over="ignore", invalid="ignore"):
+        _, engine = replay(settings, capture, messages.append, log=lambda *a, **k: None)
     binary = any(rt.learner.binary for rt in engine.models.values())
     err = _errors(messages, binary)
     cand = Candidate(learning_rate, batch_size, predictions=len(err),
                      divergences=sum(engine.guard_trips.values()))
     if len(err) >= 2 * WINDOWS:
-        half = err[len(err) // 2:]
         root = (lambda v: math.sqrt(v)) if not binary else (lambda v: v)
-        cand.error_second_half = root(float(np.mean(half)))
-        size = len(err) // WINDOWS
-        cand.worst_window = max(root(float(np.mean(err[i:i + size])))
-                                for i in range(0, len(err) - size + 1, size))
+        with np.errstate(over="ignore", invalid="ignore"):
+            cand.error_second_half = root(float(np.mean(err[len(err) // 2:])))
+            cand.worst_window = root(worst_window(err, len(err) // WINDOWS))
     return cand
 
 
@@ -92,6 +100,8 @@ def parse_list(text: str | None, kind: type, name: str) -> list:
 def run_tune(args: argparse.Namespace) -> int:
     """``edgeprop tune``: rank candidates and print the config lines for the winner."""
     settings = load_config(args.config)
+    if not os.path.isfile(args.capture):
+        raise EdgepropError(f"--capture {args.capture}: no such file")
     rates = parse_list(args.learning_rates, float, "--learning-rates")
     batches: Sequence[int | None] = parse_list(args.batch_sizes, int, "--batch-sizes") or [None]
     grid = [(lr, b) for lr in rates for b in batches]
@@ -100,6 +110,9 @@ def run_tune(args: argparse.Namespace) -> int:
         results = list(pool.map(evaluate, [args.config] * len(grid), [args.capture] * len(grid),
                                 [g[0] for g in grid], [g[1] for g in grid]))
     results.sort(key=Candidate.rank_key)
+    if not any(c.predictions for c in results):
+        raise EdgepropError(f"no candidate published a scored prediction from {args.capture}: check "
+                            f"that its topics match the config's (a replay shows rejects by reason)")
     binary = any(m.task == "binary" for m in settings.models)
     unit = "log-loss" if binary else "RMSE"
     print(f"{'rank':>4} {'learning_rate':>13} {'batch':>5} {unit + ' 2nd half':>15} "

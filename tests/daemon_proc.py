@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import json
 import os
+import re
 import signal
 import subprocess
 import sys
@@ -19,6 +20,7 @@ import paho.mqtt.client as mqtt
 import yaml
 
 ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
+SYSTEMD_VARS = ("NOTIFY_SOCKET", "WATCHDOG_USEC", "WATCHDOG_PID")
 
 
 def model_config(name: str = "m1", hidden=(16,), lr: float = 0.02, warmup: int = 50,
@@ -38,10 +40,15 @@ def model_config(name: str = "m1", hidden=(16,), lr: float = 0.02, warmup: int =
     return m
 
 
-def write_config(tmp_path, broker, models: list[dict] | None = None, **top: Any) -> str:
-    """Write a config file for ``broker``; returns its path."""
+def write_config(tmp_path, broker, models: list[dict] | None = None, *,
+                 broker_options: dict | None = None, **top: Any) -> str:
+    """Write a config file for ``broker``; returns its path.
+
+    ``broker_options`` go into the config's ``broker`` section (the name ``broker`` is taken).
+    """
     cfg = {"node": "testnode", "broker": {"host": broker.host, "port": broker.port,
-                                          "reconnect_min_s": 0.2, "reconnect_max_s": 1.0},
+                                          "reconnect_min_s": 0.2, "reconnect_max_s": 1.0,
+                                          **(broker_options or {})},
            "state_dir": str(tmp_path / "state"), "metrics": {"listen": None},
            "control": {"socket": str(tmp_path / "ctl.sock")},
            "checkpoints": {"every_s": 3600, "keep": 5},
@@ -59,14 +66,21 @@ def write_config(tmp_path, broker, models: list[dict] | None = None, **top: Any)
 class Daemon:
     """``edgeprop run`` in a subprocess, stderr captured to a file."""
 
-    def __init__(self, config: str, env: dict | None = None) -> None:
+    def __init__(self, config: str, env: dict | None = None, separate_stdout: bool = False) -> None:
         self.config = config
         self.log_path = config + f".{time.time_ns()}.log"
         self._log = open(self.log_path, "w")
-        full_env = {**os.environ, "PYTHONPATH": ROOT, **(env or {})}
+        # separate_stdout: stderr alone goes to log_path, stdout to stdout_path (must stay empty)
+        self.stdout_path = self.log_path + ".stdout" if separate_stdout else None
+        self._out = open(self.stdout_path, "w") if separate_stdout else None
+        # systemd's variables reach the daemon only when a test sets them: a suite run
+        # from inside a unit must not have test daemons talking to the real manager.
+        inherited = {k: v for k, v in os.environ.items() if k not in SYSTEMD_VARS}
+        full_env = {**inherited, "PYTHONPATH": ROOT, **(env or {})}
         self.proc = subprocess.Popen([sys.executable, "-m", "daemon.cli", "run", "-c", config],
-                                     stdout=self._log, stderr=subprocess.STDOUT, env=full_env,
-                                     cwd=os.path.dirname(config))
+                                     stdout=self._out or self._log,
+                                     stderr=self._log if separate_stdout else subprocess.STDOUT,
+                                     env=full_env, cwd=os.path.dirname(config))
 
     def log(self) -> str:
         with open(self.log_path) as f:
@@ -82,6 +96,10 @@ class Daemon:
                 raise AssertionError(f"daemon exited {self.proc.returncode} before {needle!r}:\n{text}")
             time.sleep(0.05)
         raise AssertionError(f"{needle!r} not logged within {timeout} s:\n{self.log()}")
+
+    def wait_ready(self, timeout: float = 15.0) -> str:
+        """Wait for the daemon's "ready" line (broker connected, checkpoints restored)."""
+        return self.wait_log("event=ready", timeout)
 
     def signal(self, sig: int) -> None:
         self.proc.send_signal(sig)
@@ -99,6 +117,25 @@ class Daemon:
             self.proc.kill()
             self.proc.wait(5)
         self._log.close()
+        if self._out is not None:
+            self._out.close()
+
+    def stdout(self) -> str:
+        """What the daemon wrote to stdout (only with ``separate_stdout=True``)."""
+        with open(self.stdout_path) as f:
+            return f.read()
+
+    def metrics_url(self, timeout: float = 15.0) -> str:
+        """The scrape URL the ``started`` line reports (``metrics.listen`` may use port 0)."""
+        text = self.wait_log("event=started", timeout)
+        found = re.search(r"event=started .*metrics=(http\S+)", text)
+        if not found:
+            raise AssertionError(f"no metrics URL in the started line:\n{text}")
+        return found.group(1)
+
+    def status(self, timeout: float = 5.0) -> dict:
+        """The running daemon's ``status`` reply through its control socket."""
+        return control_status(self.config, timeout)
 
 
 class Probe:
@@ -106,6 +143,7 @@ class Probe:
 
     def __init__(self, broker, subscribe: str = "edgeprop/#") -> None:
         self.messages: list[tuple[str, bytes]] = []
+        self.arrivals: list[float] = []      # time.monotonic() of each entry of ``messages``
         self._lock = threading.Lock()
         self.client = mqtt.Client(mqtt.CallbackAPIVersion.VERSION2, client_id=f"probe-{time.time_ns()}")
         self.client.on_message = self._on_message
@@ -119,9 +157,30 @@ class Probe:
     def _on_message(self, client, userdata, msg) -> None:
         with self._lock:
             self.messages.append((msg.topic, msg.payload))
+            self.arrivals.append(time.monotonic())
 
     def publish(self, topic: str, payload: str | bytes, qos: int = 1) -> None:
         self.client.publish(topic, payload, qos=qos).wait_for_publish(5)
+
+    def publish_many(self, items, qos: int = 0, timeout: float = 30.0) -> int:
+        """Publish (topic, payload, ...) tuples in order without a round trip each; wait for the last.
+
+        One connection keeps the order of its messages (MQTT 3.1.1 section 4.6), so inputs
+        published before a target reach the daemon before it.
+        """
+        info, n = None, 0
+        for item in items:
+            info = self.client.publish(item[0], item[1], qos=qos)
+            n += 1
+        if info is not None:
+            info.wait_for_publish(timeout)
+        return n
+
+    def received_since(self, topic: str, since: float) -> int:
+        """How many messages on ``topic`` arrived at or after monotonic time ``since``."""
+        with self._lock:
+            return sum(1 for (t, _p), at in zip(self.messages, self.arrivals)
+                       if t == topic and at >= since)
 
     def predictions(self, topic: str = "edgeprop/testnode/m1") -> list[dict]:
         with self._lock:
@@ -161,3 +220,197 @@ def bearing_stream(n: int, t0: float = 1_765_000_000.0, seed: int = 0, noise: fl
         yield ("site/p1/current", repr(float(current)), None)
         yield ("site/p1/bearing_temp", json.dumps({"value": float(temp + noise * rng.normal()), "ts": t}),
                float(temp))
+
+
+def control_status(config: str, timeout: float = 5.0) -> dict:
+    """``status`` from the daemon's control socket (the socket path is read from ``config``)."""
+    from daemon.config import load_config
+    from daemon.control import request
+    reply = request(load_config(config).control_socket, {"cmd": "status"}, timeout)
+    if not reply.get("ok"):
+        raise AssertionError(f"status request refused: {reply}")
+    return reply["result"]
+
+
+def scrape(url: str, timeout: float = 5.0) -> dict[tuple, float]:
+    """Samples of a metrics endpoint as {(name, ((label, value), ...)): value}."""
+    import urllib.request
+
+    from prometheus_client.parser import text_string_to_metric_families
+    with urllib.request.urlopen(url, timeout=timeout) as resp:
+        text = resp.read().decode()
+    out = {}
+    for family in text_string_to_metric_families(text):
+        for sample in family.samples:
+            out[(sample.name, tuple(sorted(sample.labels.items())))] = sample.value
+    return out
+
+
+def retained(broker, topic: str, timeout: float = 5.0) -> bytes | None:
+    """The retained message a new subscriber gets on ``topic``; None if there is none."""
+    got: list[bytes] = []
+    done = threading.Event()
+    client = mqtt.Client(mqtt.CallbackAPIVersion.VERSION2, client_id=f"retained-{time.time_ns()}")
+
+    def on_message(c, userdata, msg):
+        if msg.retain:
+            got.append(msg.payload)
+            done.set()
+
+    def on_subscribe(c, userdata, mid, codes, props):
+        # Retained messages are sent before the SUBACK is processed by most brokers, but
+        # give a slow broker a moment; the wait below ends as soon as one arrives.
+        subscribed.set()
+
+    subscribed = threading.Event()
+    client.on_message = on_message
+    client.on_subscribe = on_subscribe
+    client.connect(broker.host, broker.port, keepalive=30)
+    client.subscribe(topic, qos=1)
+    client.loop_start()
+    try:
+        if subscribed.wait(timeout):
+            done.wait(0.5)
+    finally:
+        client.loop_stop()
+        client.disconnect()
+    return got[-1] if got else None
+
+
+def wait_until(pred, timeout: float = 15.0, what: str = "condition", every: float = 0.05):
+    """Poll ``pred`` until it returns a truthy value (returned) or fail after ``timeout`` s."""
+    deadline = time.monotonic() + timeout
+    last_exc = None
+    while time.monotonic() < deadline:
+        try:
+            value = pred()
+        except Exception as exc:  # noqa: BLE001 - e.g. the daemon not answering yet
+            last_exc, value = exc, None
+        if value:
+            return value
+        time.sleep(every)
+    raise AssertionError(f"timed out after {timeout} s waiting for {what}"
+                         + (f" (last error: {last_exc!r})" if last_exc else ""))
+
+
+# -- helpers for the operations tests (checkpoints, control, reload, notify) ------------------
+
+def cli(config: str, *args: str, timeout: float = 30.0) -> subprocess.CompletedProcess:
+    """Run ``edgeprop ARGS -c CONFIG`` in a subprocess, as an operator would; text output."""
+    env = {k: v for k, v in os.environ.items() if k not in SYSTEMD_VARS}
+    env["PYTHONPATH"] = ROOT
+    return subprocess.run([sys.executable, "-m", "daemon.cli", *args, "-c", config],
+                          capture_output=True, text=True, timeout=timeout, env=env,
+                          cwd=os.path.dirname(config))
+
+
+def control(socket_path: str, payload: dict) -> Any:
+    """One request on the daemon's control socket; the result, or AssertionError with the error."""
+    from daemon.control import request
+    reply = request(socket_path, payload)
+    assert reply.get("ok"), f"control request {payload} refused: {reply.get('error')}"
+    return reply["result"]
+
+
+def checkpoint_ids(state_dir: str, model: str = "m1") -> list[str]:
+    """Checkpoint ids on disk for ``model``, oldest first (read-only: no store is opened)."""
+    from daemon.checkpoints import ID_RE, _id_key
+    directory = os.path.join(state_dir, model)
+    if not os.path.isdir(directory):
+        return []
+    ids = [n[:-4] for n in os.listdir(directory) if n.endswith(".npz") and ID_RE.match(n[:-4])]
+    return sorted(ids, key=_id_key)
+
+
+def offline_runtime(config: str, cid: str, model: str = "m1"):
+    """A ``ModelRuntime`` for ``model`` loaded from checkpoint ``cid`` without a running daemon.
+
+    Reads the file with ``nets.store.read_state`` directly, so it never tidies or writes the
+    state directory a running daemon may be using.
+    """
+    from daemon.config import load_config
+    from daemon.runtime import ModelRuntime
+    from nets.store import read_state
+    settings = load_config(config)
+    m = next(x for x in settings.models if x.name == model)
+    arrays, header = read_state(os.path.join(settings.state_dir, model, cid + ".npz"))
+    rt = ModelRuntime(m, settings.publish_topic(m), None)
+    rt.learner.check_header(header)
+    rt.load_arrays(arrays)
+    rt.checkpoint_id = cid
+    return rt, header
+
+
+class PacedPublisher:
+    """Publishes ``bearing_stream`` readings at ``rate`` targets/s from a thread (QoS 0).
+
+    Keeps going across daemon restarts, like a plant that does not wait for its gateway.
+    Never faster than ``rate``: after a stall it resumes the pace instead of catching up,
+    so any span of L seconds carries at most about ``rate * L`` targets.
+    """
+
+    def __init__(self, probe: Probe, rate: float, seed: int = 0) -> None:
+        self.probe, self.rate, self.seed = probe, rate, seed
+        self.targets = 0
+        self._stop = threading.Event()
+        self._thread = threading.Thread(target=self._run, name="paced-publisher", daemon=True)
+        self._thread.start()
+
+    def _run(self) -> None:
+        start = time.monotonic()
+        for i, (topic, payload, truth) in enumerate(bearing_stream(10_000_000, seed=self.seed)):
+            if self._stop.is_set():
+                return
+            self.probe.client.publish(topic, payload, qos=0)
+            if truth is not None:
+                self.targets += 1
+                delay = start + self.targets / self.rate - time.monotonic()
+                if delay > 0:
+                    time.sleep(delay)
+                else:
+                    start -= delay       # fell behind: never catch up in a burst above the rate
+
+    def stop(self) -> None:
+        self._stop.set()
+        self._thread.join(5)
+
+
+class NotifyListener:
+    """A datagram socket where systemd's notify socket would be; records every line received."""
+
+    def __init__(self) -> None:
+        import socket
+        import tempfile
+        self.dir = tempfile.mkdtemp(prefix="sdn-")        # short: sun_path holds 107 bytes
+        self.path = os.path.join(self.dir, "notify")
+        self.sock = socket.socket(socket.AF_UNIX, socket.SOCK_DGRAM)
+        self.sock.bind(self.path)
+        self.sock.settimeout(0.1)
+        self.datagrams: list[tuple[float, str]] = []
+
+    def env(self, watchdog_usec: int | None = None) -> dict:
+        env = {"NOTIFY_SOCKET": self.path}
+        if watchdog_usec is not None:
+            env["WATCHDOG_USEC"] = str(watchdog_usec)
+        return env
+
+    def collect(self, until, timeout: float = 15.0, what: str = "notification") -> None:
+        """Receive datagrams until ``until(self)`` is true."""
+        deadline = time.monotonic() + timeout
+        while not until(self):
+            if time.monotonic() > deadline:
+                raise AssertionError(f"timed out waiting for {what}; got {self.datagrams}")
+            try:
+                data = self.sock.recv(4096)
+            except OSError:
+                continue
+            self.datagrams.append((time.monotonic(), data.decode()))
+
+    def lines(self) -> list[str]:
+        """Every assignment received, in order (a datagram may carry several lines)."""
+        return [line for _t, text in self.datagrams for line in text.split("\n") if line]
+
+    def close(self) -> None:
+        import shutil
+        self.sock.close()
+        shutil.rmtree(self.dir, ignore_errors=True)

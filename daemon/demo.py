@@ -1,0 +1,450 @@
+"""``edgeprop demo``: a broker, a simulated pumping station and the real daemon, in one command.
+
+The daemon runs as the same subprocess systemd would start (``run -c``), so
+what the demo shows is what a deployment does. The broker is the pure-Python
+amqtt in a subprocess of its own (its asyncio loop stays out of ours), bound to
+loopback only. The station runs faster than real time, so every reading carries
+its simulated time and the config aligns on it. The view listens to the
+daemon's predictions and asks its control socket for learning rate and loss.
+Ctrl-C or SIGTERM stops the station, then the daemon, then the broker, and
+the report is still written from what arrived.
+"""
+from __future__ import annotations
+
+import argparse
+import importlib.util
+import json
+import math
+import os
+import shutil
+import signal
+import socket
+import subprocess
+import sys
+import tempfile
+import threading
+import time
+from typing import Callable, Optional
+
+import numpy as np
+import paho.mqtt.client as mqtt
+import yaml
+
+from .control import request
+from .errors import ConfigError, ControlError, EdgepropError
+from .simulator import DEFAULT_START_T, PumpStation, publish_loop
+
+PREFIX = "site/p1"
+DT_S = 60.0                 # one reading per signal per simulated minute
+SEED = 1
+# The scenario the demo config was tuned on (see demo_config.yaml): 3 days, seasons from 1.25 d,
+# wear from 2 d. Shorter runs keep the same proportions of their span.
+SEASON_AT_D, FAULT_AT_D, FULL_SPAN_D = 1.25, 2.0, 3.0
+PLAIN_EVERY_S, TTY_EVERY_S = 5.0, 0.5
+CAUTION = ("Predictions are advisory only: never a protective function (trip, interlock, "
+           "safety instrumented system). Local codes and licensed practice govern.")
+
+
+def config_path() -> str:
+    """The demo config shipped inside the package."""
+    return os.path.join(os.path.dirname(os.path.abspath(__file__)), "demo_config.yaml")
+
+
+def scenario_times(span_s: float) -> tuple[float, float]:
+    """(season_at_s, fault_at_s) for a run of ``span_s`` simulated seconds."""
+    full = FULL_SPAN_D * 86400.0
+    scale = 1.0 if span_s >= full else span_s / full
+    return SEASON_AT_D * 86400.0 * scale, FAULT_AT_D * 86400.0 * scale
+
+
+def require(module: str, what: str) -> None:
+    """Fail with the install command when an optional package of the demo is missing."""
+    if importlib.util.find_spec(module) is None:
+        raise EdgepropError(f"{what} needs the optional package {module!r}, which is not installed; "
+                            f"install the demo extra: pip install 'edgeprop[demo]'")
+
+
+def parse_broker(text: str) -> tuple[str, int]:
+    """``HOST:PORT`` of --broker; a usage error names the option."""
+    host, sep, port = text.rpartition(":")
+    if not sep or not host or not port.isdigit() or not 1 <= int(port) <= 65535:
+        raise ConfigError([f"--broker: {text!r} is not HOST:PORT with a port 1..65535, "
+                           f"e.g. 127.0.0.1:1883"])
+    return host.strip("[]"), int(port)
+
+
+def free_port() -> int:
+    """A loopback TCP port nobody listened on a moment ago."""
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        return s.getsockname()[1]
+
+
+def _tail(path: str, n: int = 15) -> str:
+    try:
+        with open(path, errors="replace") as f:
+            return "".join(f.readlines()[-n:])
+    except OSError:
+        return ""
+
+
+class Child:
+    """A subprocess in its own session (so Ctrl-C reaches only us and we stop it in order)."""
+
+    def __init__(self, name: str, argv: list[str], log_path: str, cwd: str,
+                 env: Optional[dict] = None) -> None:
+        self.name, self.log_path = name, log_path
+        with open(log_path, "wb") as log:
+            self.proc = subprocess.Popen(argv, stdin=subprocess.DEVNULL, stdout=log,
+                                         stderr=subprocess.STDOUT, cwd=cwd, env=env,
+                                         start_new_session=True)
+
+    def check_alive(self) -> None:
+        """Raise with the tail of its log if it has exited."""
+        if self.proc.poll() is not None:
+            raise EdgepropError(f"the {self.name} exited with status {self.proc.returncode}; "
+                                f"last lines of {self.log_path}:\n{_tail(self.log_path)}")
+
+    def stop(self, timeout: float = 10.0) -> Optional[int]:
+        """SIGTERM, then SIGKILL after ``timeout`` s; returns the exit status."""
+        if self.proc.poll() is None:
+            self.proc.terminate()
+            try:
+                self.proc.wait(timeout)
+            except subprocess.TimeoutExpired:
+                self.proc.kill()
+                self.proc.wait(5)
+        return self.proc.returncode
+
+
+def start_broker(out: str, timeout: float = 20.0) -> tuple[Child, int]:
+    """amqtt on a free loopback port with a loopback-only config (its default binds 0.0.0.0)."""
+    port = free_port()
+    cfg = os.path.join(out, "broker.yaml")
+    with open(cfg, "w", encoding="utf-8") as f:
+        f.write("listeners:\n  default:\n    type: tcp\n"
+                f"    bind: 127.0.0.1:{port}\n"
+                "plugins:\n  amqtt.plugins.authentication.AnonymousAuthPlugin:\n"
+                "    allow_anonymous: true\n")
+    child = Child("embedded broker (amqtt)", [sys.executable, "-m", "amqtt.scripts.broker_script",
+                                              "-c", cfg], os.path.join(out, "broker.log"), out)
+    deadline = time.monotonic() + timeout
+    while time.monotonic() < deadline:
+        child.check_alive()
+        try:
+            socket.create_connection(("127.0.0.1", port), timeout=0.5).close()
+            return child, port
+        except OSError:
+            time.sleep(0.05)
+    child.stop()
+    raise EdgepropError(f"the embedded broker did not listen on 127.0.0.1:{port} within {timeout:g} s; "
+                        f"see {child.log_path}")
+
+
+def write_demo_config(out: str, host: str, port: int, sock: str) -> str:
+    """The packaged demo config pointed at this run's broker, state and control socket."""
+    with open(config_path(), encoding="utf-8") as f:
+        cfg = yaml.safe_load(f)
+    cfg["broker"].update(host=host, port=port, reconnect_min_s=0.2, reconnect_max_s=2.0)
+    cfg["state_dir"] = os.path.join(out, "state")
+    cfg["metrics"] = {"listen": "127.0.0.1:0"}
+    cfg["control"] = {"socket": sock}
+    cfg["checkpoints"]["every_s"] = 30.0       # real seconds: a few checkpoints to look at
+    path = os.path.join(out, "demo.yaml")
+    with open(path, "w", encoding="utf-8") as f:
+        f.write("# written by `edgeprop demo` for this run; see daemon/demo_config.yaml\n")
+        yaml.safe_dump(cfg, f, sort_keys=False)
+    return path
+
+
+def start_daemon(config: str, out: str) -> Child:
+    """``edgeprop run -c config``, as systemd runs it, with this package importable."""
+    root = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
+    env = dict(os.environ)
+    env["PYTHONPATH"] = os.pathsep.join([root] + [p for p in [env.get("PYTHONPATH")] if p])
+    return Child("daemon", [sys.executable, "-m", "daemon.cli", "run", "-c", config],
+                 os.path.join(out, "daemon.log"), out, env)
+
+
+def status(sock: str) -> Optional[dict]:
+    """The daemon's status through its control socket, or None when it does not answer."""
+    try:
+        reply = request(sock, {"cmd": "status"}, timeout=2.0)
+    except (ControlError, OSError):
+        return None
+    return reply.get("result") if reply.get("ok") else None
+
+
+def wait_daemon_ready(daemon: Child, sock: str, stop: threading.Event, timeout: float = 30.0) -> None:
+    """Until the daemon answers on its socket and is connected to the broker."""
+    deadline = time.monotonic() + timeout
+    while time.monotonic() < deadline and not stop.is_set():
+        daemon.check_alive()
+        st = status(sock)
+        if st is not None and st.get("broker_connected"):
+            time.sleep(0.3)            # its SUBSCRIBE goes out right after CONNACK
+            return
+        time.sleep(0.1)
+    if not stop.is_set():
+        raise EdgepropError(f"the daemon did not connect within {timeout:g} s; see {daemon.log_path}")
+
+
+class Collector:
+    """Subscribes to the daemon's prediction topic and keeps every message, in order."""
+
+    def __init__(self, host: str, port: int, topic: str) -> None:
+        self.messages: list[dict] = []
+        self._lock = threading.Lock()
+        self.client = _client("edgeprop-demo-view")
+        self.client.on_connect = lambda c, *a: c.subscribe(topic, qos=0)
+        self.client.on_message = self._on_message
+        self.client.connect(host, port, keepalive=30)
+        self.client.loop_start()
+
+    def _on_message(self, client, userdata, msg) -> None:
+        try:
+            body = json.loads(msg.payload)
+        except ValueError:
+            return
+        if isinstance(body, dict) and "predicted" in body:
+            with self._lock:
+                self.messages.append(body)
+
+    def snapshot(self) -> list[dict]:
+        with self._lock:
+            return list(self.messages)
+
+    def close(self) -> None:
+        self.client.disconnect()
+        self.client.loop_stop()
+
+
+def _client(prefix: str) -> mqtt.Client:
+    return mqtt.Client(mqtt.CallbackAPIVersion.VERSION2, client_id=f"{prefix}-{os.getpid()}")
+
+
+class Station:
+    """The simulated station publishing in a thread, paced at ``speed`` x real time."""
+
+    def __init__(self, host: str, port: int, speed: float, span_s: float) -> None:
+        season, fault = scenario_times(span_s)
+        self.station = PumpStation(SEED, dt_s=DT_S, fault_at_s=fault, season_at_s=season)
+        self.stop = threading.Event()
+        self.client = _client("edgeprop-demo-station")
+        self.client.connect(host, port, keepalive=30)
+        # Nagle + delayed ACK hold back the first small messages ~40 ms each (FIELD-NOTES)
+        self.client.socket().setsockopt(socket.IPPROTO_TCP, socket.TCP_NODELAY, 1)
+        self.client.loop_start()
+        publish = lambda topic, payload: self.client.publish(topic, payload, qos=0)  # noqa: E731
+        self.thread = threading.Thread(target=publish_loop, name="demo-station", daemon=True,
+                                       args=(publish, self.station, PREFIX, speed, span_s,
+                                             time.monotonic, time.sleep, self.stop))
+        self.thread.start()
+
+    def close(self) -> None:
+        self.stop.set()
+        self.thread.join(5)
+        self.client.disconnect()
+        self.client.loop_stop()
+
+
+class View:
+    """Live progress: a block redrawn in place on a terminal, a plain line now and then otherwise."""
+
+    def __init__(self, tty: bool, write: Callable[[str], None], duration: float, span_s: float) -> None:
+        self.tty, self.write, self.duration = tty, write, duration
+        self.season_s, self.fault_s = scenario_times(span_s)
+        self.drawn = 0
+        self.last_lr: Optional[float] = None
+        self.events: list[dict] = []
+
+    def note_status(self, st: Optional[dict], messages: list[dict]) -> None:
+        """Record a learning-rate change (drift boost, its end, a guard cut) at the latest sim time."""
+        model = (st or {}).get("models", {}).get("bearing_temp")
+        if model is None:
+            return
+        lr = float(model["learning_rate"])
+        if self.last_lr is not None and lr != self.last_lr and messages:
+            self.events.append({"t": messages[-1]["t"], "kind": "learning_rate", "value": f"{lr:.3g}",
+                                "model": "bearing_temp"})
+        self.last_lr = lr
+
+    def lines(self, elapsed: float, st: Optional[dict], messages: list[dict]) -> list[str]:
+        model = (st or {}).get("models", {}).get("bearing_temp", {})
+        last = messages[-1] if messages else None
+        sim_h = (last["t"] - DEFAULT_START_T) / 3600.0 if last else 0.0
+        res = [m["residual"] for m in messages[-200:] if m.get("residual") is not None]
+        rmse = f"{math.sqrt(float(np.mean(np.square(res)))):.2f} degC" if res else "-"
+        loss = model.get("recent_loss")
+        phase = ("bearing wear" if sim_h * 3600 > self.fault_s else
+                 "seasonal warming" if sim_h * 3600 > self.season_s else "normal running")
+        lr = model.get("learning_rate")
+        return [
+            f"edgeprop demo  {elapsed:5.0f} s of {self.duration:g}   simulated {sim_h:6.1f} h   {phase}",
+            f"  samples {model.get('samples', 0):>7}   predictions {len(messages):>7}"
+            f"   rejects {sum((st or {}).get('rejects', {}).values())}",
+            f"  loss (recent, standardised) {'-' if loss is None else f'{loss:.4f}'}"
+            f"   RMSE last 200: {rmse}",
+            f"  drift {'ACTIVE' if model.get('drift_active') else 'no':<6}   learning rate "
+            f"{'-' if lr is None else f'{lr:.4g}'} (configured {model.get('configured_learning_rate', '-')})",
+            "  bearing temp  " + ("waiting for the first prediction (warm-up)" if last is None else
+                                  f"measured {last['measured']:.2f} degC   predicted {last['predicted']:.2f} degC"),
+        ]
+
+    def show(self, elapsed: float, st: Optional[dict], messages: list[dict]) -> None:
+        lines = self.lines(elapsed, st, messages)
+        if self.tty:
+            up = f"\x1b[{self.drawn}F" if self.drawn else ""
+            self.write(up + "".join(f"\x1b[K{line}\n" for line in lines))
+            self.drawn = len(lines)
+        else:
+            self.write(" | ".join(" ".join(line.split()) for line in lines) + "\n")
+
+
+def _install_stop(stop: threading.Event) -> dict:
+    old = {}
+    for sig in (signal.SIGINT, signal.SIGTERM):
+        old[sig] = signal.signal(sig, lambda *_: stop.set())
+    return old
+
+
+def run_demo(args: argparse.Namespace) -> int:
+    """``edgeprop demo``: run, show, stop in order, write the report; print its paths."""
+    if not (args.duration > 0 and math.isfinite(args.duration)):
+        raise ConfigError([f"--duration: {args.duration!r} must be a positive number of seconds"])
+    if not (args.speed > 0 and math.isfinite(args.speed)):
+        raise ConfigError([f"--speed: {args.speed!r} must be a positive number (simulated s per real s)"])
+    external = parse_broker(args.broker) if args.broker else None
+    if external is None:
+        require("amqtt", "the embedded MQTT broker of the demo")
+    require("matplotlib", "the demo's plot")
+    out = os.path.abspath(args.out)
+    os.makedirs(out, exist_ok=True)
+    shutil.rmtree(os.path.join(out, "state"), ignore_errors=True)   # a re-run starts fresh
+    print(CAUTION, flush=True)
+    stop = threading.Event()
+    old = _install_stop(stop)
+    sock_dir = tempfile.mkdtemp(prefix="edgeprop-demo-")     # short path: sun_path is 108 bytes
+    span_s = args.duration * args.speed
+    parts: dict = {}
+    failure: Optional[EdgepropError] = None
+    view = View(sys.stdout.isatty(), lambda s: (sys.stdout.write(s), sys.stdout.flush()),
+                args.duration, span_s)
+    try:
+        if external is None:
+            parts["broker"], port = start_broker(out)
+            host = "127.0.0.1"
+        else:
+            host, port = external
+        sock = os.path.join(sock_dir, "control.sock")
+        config = write_demo_config(out, host, port, sock)
+        print(f"broker {host}:{port} ({'embedded amqtt' if external is None else 'external'}); "
+              f"daemon config {config}; log {os.path.join(out, 'daemon.log')}", flush=True)
+        parts["daemon"] = start_daemon(config, out)
+        wait_daemon_ready(parts["daemon"], sock, stop)
+        if not stop.is_set():
+            parts["view"] = Collector(host, port, "edgeprop/demo-station/bearing_temp")
+            parts["station"] = Station(host, port, args.speed, span_s)
+            try:
+                _watch(parts, sock, view, stop, args.duration)
+            except EdgepropError as exc:      # the daemon died: still report what arrived
+                failure = exc
+    finally:
+        signal.signal(signal.SIGINT, old[signal.SIGINT])
+        signal.signal(signal.SIGTERM, old[signal.SIGTERM])
+        messages = _shut_down(parts)
+        shutil.rmtree(sock_dir, ignore_errors=True)
+    code = _report(out, messages, view, span_s, args.speed, stop.is_set())
+    if failure is not None:
+        raise failure
+    return code
+
+
+def _watch(parts: dict, sock: str, view: View, stop: threading.Event, duration: float) -> None:
+    started = time.monotonic()
+    every = TTY_EVERY_S if view.tty else PLAIN_EVERY_S
+    next_show = started
+    while not stop.is_set():
+        now = time.monotonic()
+        parts["daemon"].check_alive()
+        msgs = parts["view"].snapshot()
+        st = status(sock)
+        view.note_status(st, msgs)
+        if now >= next_show:
+            view.show(now - started, st, msgs)
+            next_show = now + every
+        if not parts["station"].thread.is_alive() or now - started >= duration:
+            _settle(parts["view"])
+            view.show(time.monotonic() - started, status(sock), parts["view"].snapshot())
+            return
+        stop.wait(0.25)
+    view.show(time.monotonic() - started, status(sock), parts["view"].snapshot())
+    print("stopping on request; writing what arrived", flush=True)
+
+
+def _settle(collector: Collector, quiet_s: float = 1.0, limit_s: float = 8.0) -> None:
+    """Let the daemon finish its backlog: until no prediction arrived for ``quiet_s``."""
+    deadline = time.monotonic() + limit_s
+    count, since = len(collector.snapshot()), time.monotonic()
+    while time.monotonic() < deadline and time.monotonic() - since < quiet_s:
+        time.sleep(0.1)
+        n = len(collector.snapshot())
+        if n != count:
+            count, since = n, time.monotonic()
+
+
+def _shut_down(parts: dict) -> list[dict]:
+    """Station, then daemon (SIGTERM: it checkpoints), then the view, then the broker."""
+    if "station" in parts:
+        parts["station"].close()
+    if "daemon" in parts:
+        code = parts["daemon"].stop()
+        if code not in (0, None):
+            print(f"daemon exited with status {code}; see {parts['daemon'].log_path}", file=sys.stderr)
+    messages = parts["view"].snapshot() if "view" in parts else []
+    if "view" in parts:
+        parts["view"].close()
+    if "broker" in parts:
+        parts["broker"].stop(5)
+    return messages
+
+
+def _report(out: str, messages: list[dict], view: View, span_s: float, speed: float,
+            interrupted: bool) -> int:
+    from .report import write_report
+    if not messages:
+        print("no predictions arrived (stopped during warm-up?); nothing to plot. "
+              f"See {os.path.join(out, 'daemon.log')}", flush=True)
+        return 0 if interrupted else 1
+    title = f"edgeprop demo: bearing temperature of a simulated pump station ({span_s / 3600:.0f} h at {speed:g}x)"
+    png, txt = write_report(messages, out, title, view.events)
+    with open(txt, "a", encoding="utf-8") as f:
+        f.write(scenario_text(messages, view, out))
+    print(f"plot: {png}\nsummary: {txt}", flush=True)
+    return 0
+
+
+def scenario_text(messages: list[dict], view: View, out: str) -> str:
+    """What the simulated plant did, on the plot's time axis, and what the residual made of it."""
+    t = np.array([m["t"] for m in messages], float)
+    r = np.array([np.nan if m["residual"] is None else m["residual"] for m in messages], float)
+    drift = np.array([bool(m["drift"]) for m in messages])
+    t0 = t[0]
+    season_t, fault_t = DEFAULT_START_T + view.season_s, DEFAULT_START_T + view.fault_s
+    h = lambda x: (x - t0) / 3600.0  # noqa: E731
+    lines = ["scenario (simulated; hours on the plot's axis, from the first prediction)",
+             f"  seasonal warming from  {h(season_t):6.1f} h  (ambient +8 degC over a day; to be followed, not flagged)",
+             f"  bearing wear from      {h(fault_t):6.1f} h  (friction grows 8 %/h; the residual should show it)"]
+    before, worn = r[t < fault_t], r[t >= fault_t]
+    if np.isfinite(before).any():
+        lines.append(f"  mean residual before wear  {np.nanmean(before):+.2f} degC")
+    if np.isfinite(worn).any():
+        last = worn[len(worn) // 2:]
+        lines.append(f"  mean residual, later half of the wear  {np.nanmean(last):+.2f} degC")
+    starts = np.flatnonzero(drift & ~np.r_[False, drift[:-1]])
+    after = [h(t[i]) - h(fault_t) for i in starts if t[i] >= fault_t]
+    lines.append(f"  drift alarms: {int((t[starts] < fault_t).sum())} before the wear, {len(after)} after"
+                 + (f" (first {after[0]:.1f} h after it began)" if after else ""))
+    lines.append(f"  learning-rate changes: {len(view.events)}")
+    lines.append(f"  daemon log {os.path.join(out, 'daemon.log')}, config {os.path.join(out, 'demo.yaml')}")
+    return "\n".join(lines) + "\n"
