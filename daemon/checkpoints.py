@@ -113,7 +113,9 @@ class CheckpointStore:
     """The checkpoints of one model in ``directory`` (``state_dir/<model>``)."""
 
     def __init__(self, directory: str, keep: int, clock: Callable[[], float] = time.time,
-                 log: LogFn = stderr_log) -> None:
+                 log: LogFn = stderr_log, tidy: bool = True) -> None:
+        """``tidy=False`` opens an existing directory without creating it or removing crash
+        leftovers: for a reader beside a running daemon, whose temp file may be in flight."""
         if keep < 1:
             raise CheckpointError(f"checkpoints.keep must be at least 1, got {keep}")
         self.directory = os.path.abspath(directory)
@@ -123,8 +125,9 @@ class CheckpointStore:
         self.skipped_corrupt = 0                 # running total, for the metrics counter
         self.mismatches: list[tuple[str, str]] = []   # (id, reason) from the last load_newest
         self._infos: dict[str, tuple[tuple[int, int, int], CheckpointInfo]] = {}
-        ensure_private_dir(self.directory)
-        self._remove_leftovers()
+        if tidy:
+            ensure_private_dir(self.directory)
+            self._remove_leftovers()
 
     # ----- writing -------------------------------------------------------------------
 

@@ -42,15 +42,15 @@ def build_parser() -> argparse.ArgumentParser:
     sp.add_argument("--model", required=True)
     sp.add_argument("--to", required=True, metavar="ID", help="checkpoint id (see 'checkpoints')")
     for verb in ("pin", "unpin"):
-        sp = cmd(verb, f"{verb} a checkpoint so retention {'never' if verb == 'pin' else 'may'} prune it")
+        sp = cmd(verb, f"{verb} a checkpoint so retention {'never prunes' if verb == 'pin' else 'may prune'} it")
         sp.add_argument("--model", required=True)
         sp.add_argument("--id", required=True)
     sp = cmd("save-now", "checkpoint now (the running daemon)")
     sp.add_argument("--model", help="only this model")
     sp = cmd("demo", "see edgeprop learn a simulated pumping station, in one command", config=False)
-    sp.add_argument("--duration", type=float, default=120.0, help="real seconds to run (default 120)")
-    sp.add_argument("--speed", type=float, default=120.0,
-                    help="simulated seconds per real second (default 120)")
+    sp.add_argument("--duration", type=float, default=90.0, help="real seconds to run (default 90)")
+    sp.add_argument("--speed", type=float, default=3600.0,
+                    help="simulated seconds per real second (default 3600: 90 s show 3.75 days)")
     sp.add_argument("--out", default="edgeprop-demo", help="directory for the plot and summary")
     sp.add_argument("--broker", metavar="HOST:PORT", help="use this broker instead of an embedded one")
     sp = cmd("record", "capture the traffic of the config's topics to a file")

@@ -12,6 +12,7 @@ the report is still written from what arrived.
 from __future__ import annotations
 
 import argparse
+import contextlib
 import importlib.util
 import json
 import math
@@ -30,19 +31,19 @@ import numpy as np
 import paho.mqtt.client as mqtt
 import yaml
 
+from .cli import CAUTION
 from .control import request
 from .errors import ConfigError, ControlError, EdgepropError
 from .simulator import DEFAULT_START_T, PumpStation, publish_loop
 
 PREFIX = "site/p1"
+MODEL = "bearing_temp"
 DT_S = 60.0                 # one reading per signal per simulated minute
 SEED = 1
 # The scenario the demo config was tuned on (see demo_config.yaml): 3 days, seasons from 1.25 d,
 # wear from 2 d. Shorter runs keep the same proportions of their span.
 SEASON_AT_D, FAULT_AT_D, FULL_SPAN_D = 1.25, 2.0, 3.0
 PLAIN_EVERY_S, TTY_EVERY_S = 5.0, 0.5
-CAUTION = ("Predictions are advisory only: never a protective function (trip, interlock, "
-           "safety instrumented system). Local codes and licensed practice govern.")
 
 
 def config_path() -> str:
@@ -71,6 +72,15 @@ def parse_broker(text: str) -> tuple[str, int]:
         raise ConfigError([f"--broker: {text!r} is not HOST:PORT with a port 1..65535, "
                            f"e.g. 127.0.0.1:1883"])
     return host.strip("[]"), int(port)
+
+
+def reachable(host: str, port: int, timeout: float = 5.0) -> None:
+    """Fail early, naming the broker, when nothing accepts connections there."""
+    try:
+        socket.create_connection((host, port), timeout=timeout).close()
+    except OSError as exc:
+        raise EdgepropError(f"--broker {host}:{port}: cannot connect ({exc.strerror or exc}); "
+                            f"is the broker running and listening there?") from None
 
 
 def free_port() -> int:
@@ -195,10 +205,9 @@ class Collector:
     def __init__(self, host: str, port: int, topic: str) -> None:
         self.messages: list[dict] = []
         self._lock = threading.Lock()
-        self.client = _client("edgeprop-demo-view")
+        self.client = _client("edgeprop-demo-view", host, port)
         self.client.on_connect = lambda c, *a: c.subscribe(topic, qos=0)
         self.client.on_message = self._on_message
-        self.client.connect(host, port, keepalive=30)
         self.client.loop_start()
 
     def _on_message(self, client, userdata, msg) -> None:
@@ -219,8 +228,14 @@ class Collector:
         self.client.loop_stop()
 
 
-def _client(prefix: str) -> mqtt.Client:
-    return mqtt.Client(mqtt.CallbackAPIVersion.VERSION2, client_id=f"{prefix}-{os.getpid()}")
+def _client(prefix: str, host: str, port: int) -> mqtt.Client:
+    """A connected paho client (its loop not yet started); a refusal names the broker."""
+    client = mqtt.Client(mqtt.CallbackAPIVersion.VERSION2, client_id=f"{prefix}-{os.getpid()}")
+    try:
+        client.connect(host, port, keepalive=30)
+    except OSError as exc:
+        raise EdgepropError(f"cannot connect to the broker at {host}:{port} ({exc})") from None
+    return client
 
 
 class Station:
@@ -230,8 +245,7 @@ class Station:
         season, fault = scenario_times(span_s)
         self.station = PumpStation(SEED, dt_s=DT_S, fault_at_s=fault, season_at_s=season)
         self.stop = threading.Event()
-        self.client = _client("edgeprop-demo-station")
-        self.client.connect(host, port, keepalive=30)
+        self.client = _client("edgeprop-demo-station", host, port)
         # Nagle + delayed ACK hold back the first small messages ~40 ms each (FIELD-NOTES)
         self.client.socket().setsockopt(socket.IPPROTO_TCP, socket.TCP_NODELAY, 1)
         self.client.loop_start()
@@ -260,17 +274,17 @@ class View:
 
     def note_status(self, st: Optional[dict], messages: list[dict]) -> None:
         """Record a learning-rate change (drift boost, its end, a guard cut) at the latest sim time."""
-        model = (st or {}).get("models", {}).get("bearing_temp")
+        model = (st or {}).get("models", {}).get(MODEL)
         if model is None:
             return
         lr = float(model["learning_rate"])
         if self.last_lr is not None and lr != self.last_lr and messages:
             self.events.append({"t": messages[-1]["t"], "kind": "learning_rate", "value": f"{lr:.3g}",
-                                "model": "bearing_temp"})
+                                "model": MODEL})
         self.last_lr = lr
 
     def lines(self, elapsed: float, st: Optional[dict], messages: list[dict]) -> list[str]:
-        model = (st or {}).get("models", {}).get("bearing_temp", {})
+        model = (st or {}).get("models", {}).get(MODEL, {})
         last = messages[-1] if messages else None
         sim_h = (last["t"] - DEFAULT_START_T) / 3600.0 if last else 0.0
         res = [m["residual"] for m in messages[-200:] if m.get("residual") is not None]
@@ -301,11 +315,10 @@ class View:
             self.write(" | ".join(" ".join(line.split()) for line in lines) + "\n")
 
 
-def _install_stop(stop: threading.Event) -> dict:
-    old = {}
-    for sig in (signal.SIGINT, signal.SIGTERM):
-        old[sig] = signal.signal(sig, lambda *_: stop.set())
-    return old
+def _stop_daemon(daemon: Child) -> None:
+    code = daemon.stop()
+    if code not in (0, None):
+        print(f"daemon exited with status {code}; see {daemon.log_path}", file=sys.stderr)
 
 
 def run_demo(args: argparse.Namespace) -> int:
@@ -319,20 +332,30 @@ def run_demo(args: argparse.Namespace) -> int:
         require("amqtt", "the embedded MQTT broker of the demo")
     require("matplotlib", "the demo's plot")
     out = os.path.abspath(args.out)
-    os.makedirs(out, exist_ok=True)
+    try:
+        os.makedirs(out, exist_ok=True)
+    except OSError as exc:
+        raise EdgepropError(f"--out {args.out}: cannot create the directory ({exc.strerror or exc})") from None
+    if external is not None:
+        reachable(*external)
     shutil.rmtree(os.path.join(out, "state"), ignore_errors=True)   # a re-run starts fresh
     print(CAUTION, flush=True)
-    stop = threading.Event()
-    old = _install_stop(stop)
-    sock_dir = tempfile.mkdtemp(prefix="edgeprop-demo-")     # short path: sun_path is 108 bytes
     span_s = args.duration * args.speed
-    parts: dict = {}
-    failure: Optional[EdgepropError] = None
     view = View(sys.stdout.isatty(), lambda s: (sys.stdout.write(s), sys.stdout.flush()),
                 args.duration, span_s)
-    try:
+    stop = threading.Event()
+    collector: Optional[Collector] = None
+    failure: Optional[EdgepropError] = None
+    # Undone in reverse: station, view, daemon (SIGTERM: it checkpoints), broker, signals, temp dir;
+    # each even if an earlier one failed, and a second Ctrl-C meanwhile only sets the flag again.
+    with contextlib.ExitStack() as undo:
+        sock_dir = tempfile.mkdtemp(prefix="edgeprop-demo-")     # short path: sun_path is 108 bytes
+        undo.callback(shutil.rmtree, sock_dir, True)
+        for sig in (signal.SIGINT, signal.SIGTERM):
+            undo.callback(signal.signal, sig, signal.signal(sig, lambda *_: stop.set()))
         if external is None:
-            parts["broker"], port = start_broker(out)
+            broker, port = start_broker(out)
+            undo.callback(broker.stop, 5)
             host = "127.0.0.1"
         else:
             host, port = external
@@ -340,45 +363,44 @@ def run_demo(args: argparse.Namespace) -> int:
         config = write_demo_config(out, host, port, sock)
         print(f"broker {host}:{port} ({'embedded amqtt' if external is None else 'external'}); "
               f"daemon config {config}; log {os.path.join(out, 'daemon.log')}", flush=True)
-        parts["daemon"] = start_daemon(config, out)
-        wait_daemon_ready(parts["daemon"], sock, stop)
+        daemon = start_daemon(config, out)
+        undo.callback(_stop_daemon, daemon)
+        wait_daemon_ready(daemon, sock, stop)
         if not stop.is_set():
-            parts["view"] = Collector(host, port, "edgeprop/demo-station/bearing_temp")
-            parts["station"] = Station(host, port, args.speed, span_s)
+            collector = Collector(host, port, f"edgeprop/demo-station/{MODEL}")
+            undo.callback(collector.close)
+            station = Station(host, port, args.speed, span_s)
+            undo.callback(station.close)
             try:
-                _watch(parts, sock, view, stop, args.duration)
+                _watch(daemon, collector, station, sock, view, stop, args.duration)
             except EdgepropError as exc:      # the daemon died: still report what arrived
                 failure = exc
-    finally:
-        signal.signal(signal.SIGINT, old[signal.SIGINT])
-        signal.signal(signal.SIGTERM, old[signal.SIGTERM])
-        messages = _shut_down(parts)
-        shutil.rmtree(sock_dir, ignore_errors=True)
+    messages = collector.snapshot() if collector is not None else []
     code = _report(out, messages, view, span_s, args.speed, stop.is_set())
     if failure is not None:
         raise failure
     return code
 
 
-def _watch(parts: dict, sock: str, view: View, stop: threading.Event, duration: float) -> None:
+def _watch(daemon: Child, collector: Collector, station: Station, sock: str, view: View,
+           stop: threading.Event, duration: float) -> None:
     started = time.monotonic()
     every = TTY_EVERY_S if view.tty else PLAIN_EVERY_S
     next_show = started
     while not stop.is_set():
         now = time.monotonic()
-        parts["daemon"].check_alive()
-        msgs = parts["view"].snapshot()
-        st = status(sock)
+        daemon.check_alive()
+        msgs, st = collector.snapshot(), status(sock)
         view.note_status(st, msgs)
         if now >= next_show:
             view.show(now - started, st, msgs)
             next_show = now + every
-        if not parts["station"].thread.is_alive() or now - started >= duration:
-            _settle(parts["view"])
-            view.show(time.monotonic() - started, status(sock), parts["view"].snapshot())
+        if not station.thread.is_alive() or now - started >= duration:
+            _settle(collector)
+            view.show(time.monotonic() - started, status(sock), collector.snapshot())
             return
         stop.wait(0.25)
-    view.show(time.monotonic() - started, status(sock), parts["view"].snapshot())
+    view.show(time.monotonic() - started, status(sock), collector.snapshot())
     print("stopping on request; writing what arrived", flush=True)
 
 
@@ -391,22 +413,6 @@ def _settle(collector: Collector, quiet_s: float = 1.0, limit_s: float = 8.0) ->
         n = len(collector.snapshot())
         if n != count:
             count, since = n, time.monotonic()
-
-
-def _shut_down(parts: dict) -> list[dict]:
-    """Station, then daemon (SIGTERM: it checkpoints), then the view, then the broker."""
-    if "station" in parts:
-        parts["station"].close()
-    if "daemon" in parts:
-        code = parts["daemon"].stop()
-        if code not in (0, None):
-            print(f"daemon exited with status {code}; see {parts['daemon'].log_path}", file=sys.stderr)
-    messages = parts["view"].snapshot() if "view" in parts else []
-    if "view" in parts:
-        parts["view"].close()
-    if "broker" in parts:
-        parts["broker"].stop(5)
-    return messages
 
 
 def _report(out: str, messages: list[dict], view: View, span_s: float, speed: float,

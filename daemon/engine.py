@@ -63,6 +63,8 @@ class Engine:
             routes = self.routes.lookup(topic)
         except PayloadError as exc:
             self._reject(exc, topic=topic)
+            if self.metrics is not None:      # taken from the queue like any other message
+                self.metrics.observe_message(time.perf_counter() - started)
             return
         for route in routes:
             rt = self.models[route.model]
@@ -79,7 +81,7 @@ class Engine:
             except SampleSkipped as exc:
                 self._skip(rt, exc)
             except Diverged as exc:
-                self._trip_guard(rt, "non_finite", str(exc))
+                self._trip_guard(rt, exc.reason, str(exc))
         if self.metrics is not None:
             self.metrics.observe_message(time.perf_counter() - started)
 
@@ -165,7 +167,7 @@ class Engine:
         except SampleSkipped:
             return
         except Diverged as exc:
-            self._trip_guard(rt, "non_finite", str(exc))
+            self._trip_guard(rt, exc.reason, str(exc))
 
     def checkpoint_all(self, reason: str) -> None:
         """Save every model; a failure is counted and logged, learning goes on."""

@@ -26,7 +26,7 @@ SHORT_ALPHA = 0.1      # ~10-sample memory (common practice, no source)
 LONG_ALPHA = 0.002     # ~500-sample memory (common practice, no source)
 MIN_SEEN = 100         # the long level means nothing before this many samples
 LEVEL_FLOOR = 1e-12    # a perfect fit still leaves a bar above zero
-REASONS = ("non_finite", "loss_blowup")   # trip reasons, as counted in the metrics
+REASONS = ("non_finite", "output_range", "loss_blowup")   # trip reasons, as counted in the metrics
 
 
 class DivergenceGuard:

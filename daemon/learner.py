@@ -21,8 +21,18 @@ from nets.bundle import HasState, bundle_arrays, check_architecture, network_hea
 from .settings import ModelSettings, TrainingSettings
 
 
+# A standardised output this far from every target seen comes only from runaway weights:
+# inputs are clipped to +-input_clip, so a sound network cannot reach it (common practice,
+# no source). Such a prediction is never published; the guard restores the model at once.
+MAX_OUTPUT_Z = 1000.0
+
+
 class Diverged(Exception):
-    """The model produced a non-finite number; the guard must restore it."""
+    """The model produced a non-finite or absurd number; the guard must restore it."""
+
+    def __init__(self, message: str, reason: str = "non_finite") -> None:
+        super().__init__(message)
+        self.reason = reason
 
 
 @dataclass
@@ -103,6 +113,9 @@ class ModelLearner:
         z = float(self.net.forward(self._x1)[0, 0])
         if not math.isfinite(z):
             raise Diverged(f"non-finite network output {z!r}")
+        if abs(z) > MAX_OUTPUT_Z:
+            raise Diverged(f"network output {z:.4g} is beyond +-{MAX_OUTPUT_Z:g} (standardised "
+                           f"target units, or logit)", "output_range")
         if self.binary:
             return Prediction(float(sigmoid(np.asarray(z))), z)
         return Prediction(float(self.y_scaler.inverse(np.asarray([z]))[0]), z)

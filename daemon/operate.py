@@ -51,11 +51,37 @@ def _payload(command: str, args: argparse.Namespace) -> dict:
     return {"cmd": "status"}        # status and checkpoints both start from status
 
 
-def _store(settings: Settings, model: str) -> CheckpointStore:
+def _store(settings: Settings, model: str, write: bool = False) -> CheckpointStore | None:
+    """The model's store; None when it has no directory yet (nothing saved so far).
+
+    Reading never tidies: a running daemon's temp file may be in flight. Writing (offline
+    only) must be done as the directory's owner, or the daemon could not read what we wrote.
+    """
     names = [m.name for m in settings.models]
     if model not in names:
         raise CheckpointError(f"no model named {model!r} in the config; models: {', '.join(names)}")
-    return CheckpointStore(os.path.join(settings.state_dir, model), settings.checkpoints.keep)
+    directory = os.path.join(settings.state_dir, model)
+    if not os.path.isdir(directory):
+        if write:
+            raise CheckpointError(f"model {model!r} has no checkpoints yet (no directory {directory})")
+        return None
+    if write:
+        _check_owner(directory)
+    return CheckpointStore(directory, settings.checkpoints.keep, tidy=write)
+
+
+def _check_owner(directory: str) -> None:
+    owner = os.stat(directory).st_uid
+    if owner == os.geteuid():
+        return
+    try:
+        import pwd
+        name = pwd.getpwuid(owner).pw_name
+    except (ImportError, KeyError):
+        name = str(owner)
+    raise ControlError(f"{directory} belongs to user {name}; files written by another user "
+                       f"could not be read by the daemon. Run this as that user, e.g. "
+                       f"sudo -u {name} edgeprop ...")
 
 
 def _offline(command: str, args: argparse.Namespace, settings: Settings) -> int:
@@ -65,10 +91,10 @@ def _offline(command: str, args: argparse.Namespace, settings: Settings) -> int:
         print("daemon: not running")
         _print_table(settings, None, in_use=None)
     elif command == "rollback":
-        new = _store(settings, args.model).promote(args.to)
+        new = _store(settings, args.model, write=True).promote(args.to)
         print(f"{args.model}: checkpoint {args.to} copied as {new}; the next start restores it")
     elif command in ("pin", "unpin"):
-        store = _store(settings, args.model)
+        store = _store(settings, args.model, write=True)
         (store.pin if command == "pin" else store.unpin)(args.id)
         print(f"{args.model}: {args.id} {'pinned' if command == 'pin' else 'unpinned'}")
     elif command == "save-now":
@@ -83,7 +109,11 @@ def _print_table(settings: Settings, only: str | None, in_use: dict | None) -> N
     print(f"{'model':<16} {'id':<24} {'saved (UTC)':<20} {'samples':>9} {'loss':>10} pinned in-use")
     for name in models:
         use = ((in_use or {}).get("models", {}).get(name) or {}).get("checkpoint") if in_use else None
-        for info in _store(settings, name).list():
+        store = _store(settings, name)
+        if store is None:
+            print(f"{name:<16} (no checkpoints yet)")
+            continue
+        for info in store.list():
             when = time.strftime("%Y-%m-%d %H:%M:%S", time.gmtime(info.saved_at)) if info.saved_at else "?"
             loss = f"{info.loss:.4g}" if info.loss is not None else "-"
             samples = info.samples if info.samples is not None else "-"

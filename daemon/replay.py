@@ -3,6 +3,14 @@
 No broker and no wall clock: the engine's clock is the capture's arrival time,
 checkpoints stay in memory (the guard still has its "last good" state), and
 every message the engine would publish goes to the output file in order.
+
+With sensor times in the payloads (``time_field``), replay publishes what
+``run`` published for the same traffic to the last bit (tests/test_replay.py).
+Two things run on the clock instead of the data and so can differ: timer
+checkpoints (the ``checkpoint`` id in messages stays null here, as there is
+no store) and predict-only ticks (``publish.every_s``), which replay fires
+after each message on the capture's clock where ``run`` fires them between
+batches on the wall clock.
 """
 from __future__ import annotations
 

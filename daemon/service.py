@@ -169,10 +169,13 @@ class Service:
         except ConfigError as exc:
             self.log("error", "reload_refused", reason="invalid config; running config kept",
                      problems=len(exc.problems), first=exc.problems[0] if exc.problems else "")
+            for problem in exc.problems[1:]:
+                self.log("error", "config_problem", detail=problem)
             self.metrics.reload("invalid")
         else:
-            changes = diff_settings(self.engine.settings, new)
+            before = self.engine.settings
             refusals = self.engine.apply_settings(new)
+            changes = diff_settings(before, self.engine.settings)     # what was applied
             self.log.set_level(self.engine.settings.logging.level)
             for line in changes:
                 self.log("info", "reload_change", change=line)

@@ -100,10 +100,10 @@ def parse_list(text: str | None, kind: type, name: str) -> list:
 def run_tune(args: argparse.Namespace) -> int:
     """``edgeprop tune``: rank candidates and print the config lines for the winner."""
     settings = load_config(args.config)
-    if not os.path.isfile(args.capture):
-        raise EdgepropError(f"--capture {args.capture}: no such file")
     rates = parse_list(args.learning_rates, float, "--learning-rates")
     batches: Sequence[int | None] = parse_list(args.batch_sizes, int, "--batch-sizes") or [None]
+    if not os.path.isfile(args.capture):
+        raise EdgepropError(f"--capture {args.capture}: no such file")
     grid = [(lr, b) for lr in rates for b in batches]
     jobs = max(1, min(args.jobs or os.cpu_count() or 1, len(grid)))
     with ProcessPoolExecutor(max_workers=jobs) as pool:

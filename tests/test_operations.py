@@ -188,10 +188,19 @@ def test_restart_after_sigterm_continues_samples_and_predicts_identically(broker
     d = Daemon(cfg)
     try:
         d.wait_ready()
-        _feed(probe, 150, wait_for=100)
-        before = wait_until(lambda: [p for p in probe.predictions()[100:] if p["measured"] is None],
-                            what="a predict-only tick")[-1]
+        probe.publish_many(bearing_stream(150), qos=1)
+
+        def tick_after_learning():
+            preds = probe.predictions()
+            measured = [k for k, p in enumerate(preds) if p["measured"] is not None]
+            if len(measured) < 100:
+                return None
+            ticks = [p for p in preds[measured[-1] + 1:] if p["measured"] is None]
+            return ticks[-1] if ticks else None
+        before = wait_until(tick_after_learning, what="a predict-only tick after the last sample")
         assert d.stop() == 0
+        time.sleep(0.2)            # anything the stopped daemon sent is in by now
+        restarted_at = time.time()
         text = d.log()
         saved = re.findall(r"model=m1 event=checkpoint_saved id=(\S+) reason=shutdown samples=(\d+)", text)
         assert saved and int(saved[-1][1]) == 150, text
@@ -202,7 +211,7 @@ def test_restart_after_sigterm_continues_samples_and_predicts_identically(broker
         text = d.wait_ready()
         assert _restored_line(text) == (cid, 150)
         after = wait_until(lambda: probe.predictions()[mark:], what="a tick after restart")[0]
-        assert after["measured"] is None
+        assert after["measured"] is None and after["t"] > restarted_at
         # same weights, scalers and input histories: the same prediction, bit for bit
         assert after["predicted"] == before["predicted"]
         assert (after["low"], after["high"]) == (before["low"], before["high"])
@@ -278,12 +287,15 @@ def test_rollback_while_running_predicts_with_the_restored_weights(broker, tmp_p
         st = control(str(tmp_path / "ctl.sock"), {"cmd": "status"})["models"]["m1"]
         assert st["checkpoint"] == first and st["samples"] == 120
 
+        x = np.array([1111.0, 12.5])
         rt, _ = offline_runtime(cfg, first)
+        later, _ = offline_runtime(cfg, second)
+        assert later.learner.predict(x).value != rt.learner.predict(x).value   # the check can fail
         mark = len(probe.predictions())
         _one_reading(probe, 1111.0, 12.5, 50.0)
         msg = wait_until(lambda: probe.predictions()[mark:], what="prediction after rollback")[0]
         assert msg["checkpoint"] == first and msg["samples"] == 120
-        assert msg["predicted"] == rt.learner.predict(np.array([1111.0, 12.5])).value
+        assert msg["predicted"] == rt.learner.predict(x).value
 
         text = d.log()
         assert re.search(rf"model=m1 event=rolled_back to={first} cause=operator", text), text
@@ -292,6 +304,15 @@ def test_rollback_while_running_predicts_with_the_restored_weights(broker, tmp_p
 
         bad = cli(cfg, "rollback", "--model", "m1", "--to", "20990101T000000Z-000999")
         assert bad.returncode == 1 and "no checkpoint" in bad.stderr and first in bad.stderr
+
+        # listing beside the running daemon reads only: a save's temp file in flight stays
+        in_flight = tmp_path / "state" / "m1" / ".20990101T000000Z-000998.npz.tmp"
+        in_flight.write_bytes(b"half a checkpoint")
+        table = cli(cfg, "checkpoints")
+        assert table.returncode == 0 and in_flight.exists(), table.stderr
+        in_use = [line.split()[1] for line in table.stdout.splitlines()[1:] if line.split()[-1] == "yes"]
+        assert in_use == [first]
+        in_flight.unlink()
         assert d.stop() == 0
     finally:
         d.kill()
@@ -315,6 +336,7 @@ def test_operator_commands_act_on_state_dir_when_the_daemon_is_stopped(broker, t
         assert on_disk == [ids[0], ids[-2], ids[-1]]           # ... but it is pinned
         running = cli(cfg, "status")
         assert running.returncode == 0 and "samples 130" in running.stdout, running.stdout
+        assert "learning rate 0.02" in running.stdout and f"checkpoint {ids[-1]}" in running.stdout
         assert d.stop() == 0
     finally:
         d.kill()
@@ -346,3 +368,9 @@ def test_operator_commands_act_on_state_dir_when_the_daemon_is_stopped(broker, t
         assert d.stop() == 0
     finally:
         d.kill()
+
+    if os.geteuid() == 0:
+        # root editing the daemon user's directory would leave files the daemon cannot read
+        os.chown(tmp_path / "state" / "m1", 65534, 65534)
+        refused = cli(cfg, "pin", "--model", "m1", "--id", promoted)
+        assert refused.returncode == 1 and "Run this as that user" in refused.stderr, refused.stderr

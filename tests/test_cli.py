@@ -1,0 +1,250 @@
+"""``edgeprop`` as a user runs it: real subprocesses, exit codes, what lands on stdout and stderr."""
+from __future__ import annotations
+
+import os
+import shutil
+import subprocess
+import sys
+
+import pytest
+import yaml
+
+from daemon import __version__
+
+ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
+CONFIGS = os.path.join(ROOT, "tests", "configs")
+# DESIGN.md, "CLI": every subcommand the product card names.
+SUBCOMMANDS = ("run", "check", "demo", "record", "replay", "tune", "checkpoints", "rollback", "status")
+
+MODEL = """\
+models:
+  - name: bearing_temp
+    target: {topic: site/p1/bearing_temp, field: value}
+    inputs:
+      - {name: speed, topic: site/p1/speed}
+      - {name: current, topic: site/p1/current, field: value, lags_s: [0, 30]}
+    training: {learning_rate: 0.005, batch_size: 16}
+"""
+
+
+def edgeprop(*args: str, cwd: str | None = None, timeout: float = 30.0) -> subprocess.CompletedProcess:
+    """``python -m daemon.cli ARGS`` with the repo on PYTHONPATH, as an installed user would."""
+    env = {**os.environ, "PYTHONPATH": ROOT}
+    return subprocess.run([sys.executable, "-m", "daemon.cli", *args], capture_output=True,
+                          text=True, env=env, cwd=cwd or ROOT, timeout=timeout)
+
+
+def write(tmp_path, text: str, name: str = "edgeprop.yaml") -> str:
+    path = tmp_path / name
+    path.write_text(text)
+    return str(path)
+
+
+def test_help_lists_every_subcommand_and_the_advisory_notice():
+    res = edgeprop("--help")
+    assert res.returncode == 0, res.stderr
+    assert res.stdout.startswith("usage: edgeprop")
+    for name in SUBCOMMANDS:
+        assert f"\n    {name} " in res.stdout or f"\n    {name}\n" in res.stdout, name
+    assert "advisory" in res.stdout and "protective function" in res.stdout
+    assert res.stderr == ""
+
+
+def test_subcommand_help_names_its_options():
+    res = edgeprop("rollback", "--help")
+    assert res.returncode == 0, res.stderr
+    for option in ("-c CONFIG", "--model MODEL", "--to ID"):
+        assert option in res.stdout, option
+
+
+def test_version():
+    res = edgeprop("--version")
+    assert res.returncode == 0
+    assert res.stdout == f"edgeprop {__version__}\n"
+
+
+def test_no_subcommand_prints_help_and_exits_2():
+    res = edgeprop()
+    assert res.returncode == 2
+    assert "usage: edgeprop" in res.stdout
+
+
+def test_unknown_subcommand_exits_2():
+    res = edgeprop("frobnicate")
+    assert res.returncode == 2
+    assert "invalid choice: 'frobnicate'" in res.stderr
+    assert res.stdout == ""
+
+
+def test_check_without_config_option_exits_2():
+    res = edgeprop("check")
+    assert res.returncode == 2
+    assert "the following arguments are required: -c/--config" in res.stderr
+
+
+def test_check_prints_the_resolved_config_with_defaults(tmp_path):
+    path = write(tmp_path, "node: station-7\n" + MODEL)
+    res = edgeprop("check", "-c", path)
+    assert res.returncode == 0, res.stderr
+    assert res.stdout.startswith(f"# {path}: valid.")
+    resolved = yaml.safe_load(res.stdout)
+    # What the user wrote is kept ...
+    assert resolved["node"] == "station-7"
+    m = resolved["models"][0]
+    assert m["inputs"][1]["lags_s"] == [0.0, 30.0] and m["inputs"][0]["field"] is None
+    assert m["training"]["learning_rate"] == 0.005 and m["training"]["batch_size"] == 16
+    # ... and every default of DESIGN.md "Contracts" is filled in.
+    assert resolved["broker"] == {**resolved["broker"], "host": "127.0.0.1", "port": 1883,
+                                  "client_id": None, "username": None, "password_file": None,
+                                  "tls": None, "keepalive_s": 30}
+    assert resolved["checkpoints"]["every_s"] == 300 and resolved["checkpoints"]["keep"] == 20
+    assert resolved["metrics"]["listen"] == "127.0.0.1:9740"
+    assert resolved["state_dir"] == str(tmp_path / "state")     # relative to the config file
+    assert m["task"] == "regression" and m["align"]["max_age_s"] == 60
+    assert m["net"] == {**m["net"], "hidden": [32, 32], "activation": "tanh", "seed": 1,
+                        "dtype": "float64"}
+    assert m["training"] == {**m["training"], "window": 2048, "steps_per_sample": 1,
+                             "loss": "squared", "momentum": 0.0, "weight_decay": 0.0,
+                             "clip_norm": None, "warmup_samples": 64}
+    assert m["drift"]["detector"] == "page_hinkley" and m["drift"]["on_drift"] == "none"
+    assert m["interval"]["coverage"] == 0.9
+    assert m["publish"] == {"topic": None, "qos": 0, "retain": False, "every_s": None}
+    # The printed config is itself a valid config that resolves to the same thing.
+    again = edgeprop("check", "-c", write(tmp_path, res.stdout, "resolved.yaml"))
+    assert again.returncode == 0, again.stderr
+    assert yaml.safe_load(again.stdout) == resolved
+
+
+def test_check_binary_task_gets_logistic_loss(tmp_path):
+    path = write(tmp_path, """\
+models:
+  - name: seal_leak
+    task: binary
+    target: {topic: site/p1/seal_leak_contact}
+    inputs: [{name: flow, topic: site/p1/flow}]
+""")
+    res = edgeprop("check", "-c", path)
+    assert res.returncode == 0, res.stderr
+    assert yaml.safe_load(res.stdout)["models"][0]["training"]["loss"] == "logistic"
+
+
+def test_check_reports_every_problem_of_a_bad_config_and_exits_2(tmp_path):
+    path = shutil.copy(os.path.join(CONFIGS, "many_errors.yaml"), tmp_path)
+    res = edgeprop("check", "-c", path)
+    assert res.returncode == 2
+    assert res.stdout == ""
+    expected = [
+        "brokr: unknown key; did you mean 'broker'?",
+        "node: 'station 7' is not allowed; use letters, digits, _ and - only (it goes into "
+        "topics and labels)",
+        "models[0].trainig: unknown key; did you mean 'training'?",
+        "models[0].target.topic: 'site/+/bearing_temp' contains the wildcard '+'; subscribe to "
+        "one exact topic here (wildcards are not allowed)",
+        "models[0].inputs[1].name: 'speed' duplicates inputs[0].name",
+        "models[1].net.activation: 'relux' is not one of 'tanh', 'relu', 'leaky_relu', "
+        "'sigmoid', 'identity'; did you mean 'relu'?",
+        "models[1].training.learning_rate: -0.1 is out of range; allowed (0, 10]",
+    ]
+    lines = [line.strip() for line in res.stderr.splitlines()]
+    assert lines[0] == "edgeprop: invalid configuration:"
+    assert lines[1:] == expected
+    assert "Traceback" not in res.stderr
+
+
+def test_check_reports_cross_key_problems(tmp_path):
+    path = write(tmp_path, """\
+node: station-7
+broker: {password: hunter2}
+models:
+  - name: seal_leak
+    task: binary
+    target: {topic: site/p1/seal_leak_contact}
+    inputs: [{name: flow, topic: site/p1/flow}]
+    training: {loss: squared, nesterov: true}
+    publish: {topic: site/p1/flow, qos: 3}
+""")
+    res = edgeprop("check", "-c", path)
+    assert res.returncode == 2
+    for message in (
+        "broker.password: an inline password is refused: put the password alone in a file only "
+        "the daemon's user can read (chmod 600) and set password_file to its path",
+        "models[0].training.loss: 'squared' does not fit task 'binary'; allowed 'logistic'",
+        "models[0].training.nesterov: true needs momentum > 0 (Nesterov is a form of momentum); "
+        "set momentum, e.g. 0.9, or drop nesterov",
+        "models[0].publish.qos: 3 is out of range; allowed [0, 2]",
+    ):
+        assert message in res.stderr, (message, res.stderr)
+
+
+@pytest.mark.parametrize("name, message", [
+    ("not_yaml.yaml", "not_yaml.yaml:4:11: not valid YAML: expected ',' or '}', but got ':'"),
+    ("repeated_key.yaml", "repeated_key.yaml: line 7, column 5: key 'training' appears again "
+                          "(first on line 6); YAML would keep only the last one, so merge or "
+                          "remove one"),
+])
+def test_check_points_at_the_line_of_a_broken_file(tmp_path, name, message):
+    path = shutil.copy(os.path.join(CONFIGS, name), tmp_path)
+    res = edgeprop("check", "-c", path)
+    assert res.returncode == 2
+    assert message in res.stderr
+    assert "Traceback" not in res.stderr
+
+
+def test_missing_config_file_exits_2_with_a_clear_message(tmp_path):
+    missing = str(tmp_path / "nowhere.yaml")
+    for command in ("check", "run", "status"):
+        res = edgeprop(command, "-c", missing)
+        assert res.returncode == 2, command
+        assert f"{missing}: cannot read the config file: No such file or directory" in res.stderr
+        assert "Traceback" not in res.stderr
+
+
+def test_run_refuses_a_bad_config_before_starting(tmp_path):
+    path = shutil.copy(os.path.join(CONFIGS, "many_errors.yaml"), tmp_path)
+    res = edgeprop("run", "-c", path, timeout=20)
+    assert res.returncode == 2
+    assert "level=error event=config_invalid" in res.stderr and "problems=7" in res.stderr
+    assert ('level=error event=config_problem detail="brokr: unknown key; did you mean '
+            "'broker'?\"") in res.stderr
+    assert res.stdout == "" and "Traceback" not in res.stderr
+
+
+def _saved_checkpoint(config: str) -> str:
+    """Save one checkpoint of a fresh model into the config's state_dir; return its id."""
+    from daemon.config import load_config
+    from daemon.runtime import ModelRuntime, store_for
+    settings = load_config(config)
+    m = settings.models[0]
+    store = store_for(settings.state_dir, m, settings.checkpoints.keep, log=lambda *a, **k: None)
+    return ModelRuntime(m, settings.publish_topic(m), store).checkpoint("operator")
+
+
+def test_status_and_checkpoints_without_a_daemon_act_on_the_state_dir(tmp_path):
+    path = write(tmp_path, "node: station-7\nstate_dir: st\nmetrics: {listen: null}\n" + MODEL)
+    cid = _saved_checkpoint(path)
+    state = str(tmp_path / "st")
+    for command in ("status", "checkpoints"):
+        res = edgeprop(command, "-c", path)
+        assert res.returncode == 0, res.stderr
+        assert f"edgeprop: daemon not running; acting on {state} directly" in res.stderr
+        row = [line for line in res.stdout.splitlines() if cid in line]
+        assert len(row) == 1 and row[0].split()[:2] == ["bearing_temp", cid], res.stdout
+    assert edgeprop("status", "-c", path).stdout.startswith("daemon: not running\n")
+
+
+def test_checkpoints_without_any_saved_lists_none(tmp_path):
+    path = write(tmp_path, "state_dir: st\nmetrics: {listen: null}\n" + MODEL)
+    res = edgeprop("checkpoints", "-c", path)
+    assert res.returncode == 0, res.stderr
+    assert "daemon not running" in res.stderr
+    assert res.stdout.splitlines()[0].split()[:2] == ["model", "id"]
+    rows = res.stdout.splitlines()[1:]
+    assert len(rows) == 1 and rows[0].split()[0] == "bearing_temp" and "no checkpoints" in rows[0]
+
+
+def test_offline_command_on_an_unknown_model_exits_1(tmp_path):
+    path = write(tmp_path, "state_dir: st\nmetrics: {listen: null}\n" + MODEL)
+    res = edgeprop("rollback", "-c", path, "--model", "nope", "--to", "x")
+    assert res.returncode == 1
+    assert "no model named 'nope' in the config; models: bearing_temp" in res.stderr
+    assert "Traceback" not in res.stderr
