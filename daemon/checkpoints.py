@@ -48,7 +48,9 @@ REASON_TEXT = {
 
 
 def stderr_log(level: str, event: str, **fields: Any) -> None:
-    """Default logger: one ``level=... event=... key=value`` line on stderr."""
+    """Default logger: one ``level=... event=... key=value`` line on stderr (debug is dropped)."""
+    if level == "debug":
+        return
     parts = [f"level={level}", f"event={event}"]
     for key, value in fields.items():
         text = str(value)
@@ -144,7 +146,7 @@ class CheckpointStore:
             raise CheckpointError(f"checkpoint {cid} not written: {exc}") from None
         path = self._path(cid)
         self._write_atomic(path, data)
-        self.log("info", "checkpoint_saved", id=cid, path=path, bytes=len(data))
+        self.log("debug", "checkpoint_written", id=cid, path=path, bytes=len(data))
         self._prune(newest=cid)
         return cid
 

@@ -130,6 +130,14 @@ class RelativeLoss:
         self.kept = values.size
 
 
+def _sum(values: list[float]) -> float:
+    """Exact sum of finite readings; inf when it passes the float range (fsum raises there)."""
+    try:
+        return math.fsum(values)
+    except OverflowError:      # e.g. two readings of 1e308: finite each, not their sum
+        return sum(values)     # plain float sum: inf or nan, never raises
+
+
 class InputShift:
     """Shift of one input's recent mean from its reference mean, in reference spreads.
 
@@ -154,7 +162,7 @@ class InputShift:
         self.buf = values + [0.0] * (self.recent - len(values))
         self.count = len(values)
         self.head = self.count % self.recent
-        self.total = math.fsum(values)
+        self.total = _sum(values)
 
     @property
     def ready(self) -> bool:
@@ -163,7 +171,8 @@ class InputShift:
 
     @property
     def ref_std(self) -> float:
-        return math.sqrt(self.ref_m2 / self.ref_n) if self.ref_n else 0.0
+        var = self.ref_m2 / self.ref_n if self.ref_n else 0.0
+        return math.sqrt(var) if var >= 0.0 else math.nan   # -inf/nan after a 1e308 reading
 
     def update(self, x: float) -> bool:
         """Add one raw value; True on the sample where the shift first exceeds the threshold."""
@@ -177,7 +186,7 @@ class InputShift:
         self.head = (self.head + 1) % self.recent
         self.count = min(self.count + 1, self.recent)
         if self.head == 0:
-            self.total = math.fsum(self.buf)        # no rounding creep over millions of samples
+            self.total = _sum(self.buf)             # no rounding creep over millions of samples
         if not self.ready:
             return False
         # a constant reference (a setpoint) gets a tiny spread, so any real move is a shift

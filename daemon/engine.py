@@ -106,13 +106,15 @@ class Engine:
         if event is not None:
             self._on_drift(rt, event)
         trip = rt.guard.observe(result.loss)
-        if trip == "loss_blowup" and not rt.good_state_fits(rt.guard.bar, rt.settings.guard.blowup_samples):
+        n = rt.settings.guard.blowup_samples
+        if trip == "loss_blowup" and not rt.good_state_fits(rt.guard.bar, n):
             # the last good state is as wrong on these samples: the plant moved, not the model
             self.log("warning", "loss_level_changed", model=rt.name, detail=rt.guard.describe(),
                      action="guard relearns the normal loss level; weights and learning rate kept")
             rt.guard.restart()
         elif trip is not None:
-            self._trip_guard(rt, trip, rt.guard.describe())
+            self._trip_guard(rt, trip, rt.guard.describe() if trip == "loss_blowup"
+                             else f"non-finite prequential loss {result.loss!r}")
         if self.metrics is not None:
             self.metrics.observe_sample(rt, pred, y, result)
 
@@ -239,7 +241,7 @@ class Engine:
             self._restore_before_change(rt, max(int(getattr(event, "since", 0) or 0), 1))
 
     def _restore_before_change(self, rt: ModelRuntime, since: int) -> None:
-        """Roll back to the newest checkpoint saved before the first of the ``since`` post-change samples."""
+        """Roll back to the newest checkpoint saved before the first post-change sample."""
         changed_at = rt.time_of(since)
         cid = rt.store.id_before(changed_at) if changed_at is not None else None
         if cid is None:

@@ -190,10 +190,12 @@ class ModelLearner:
         if hasattr(self.opt, "momentum"):
             self.opt.momentum = tr.momentum
             self.opt.nesterov = tr.nesterov
+        rate_changed = tr.learning_rate != self.training.learning_rate
         self.training = tr
-        self.lr_multiplier = 1.0          # an operator's new rate replaces any guard cut
-        self._boost_left = 0
-        self._set_lr(tr.learning_rate)
+        if rate_changed:                  # an operator's new rate replaces any guard cut or boost
+            self.lr_multiplier = 1.0
+            self._boost_left = 0
+            self._set_lr(tr.learning_rate)
 
     # -- persistence ------------------------------------------------------------
     def parts(self) -> dict[str, HasState]:

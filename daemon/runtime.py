@@ -121,6 +121,13 @@ class ModelRuntime:
         if not self.learner.weights_finite():
             raise CheckpointError(f"model {self.name!r} has non-finite weights; not saved")
         arrays = self.state_arrays()
+        bad = sorted(k for k, a in arrays.items()
+                     if a.dtype.kind == "f" and not np.isfinite(a).all())
+        if bad:
+            # e.g. a scaler overflowed on a wild reading during warm-up: as the guard's
+            # "last good" state it would fail on its first prediction, again and again
+            raise CheckpointError(f"model {self.name!r} holds non-finite numbers in "
+                                  f"{', '.join(bad[:3])}; not saved")
         self.good = arrays
         if self.store is None:
             return None
@@ -151,8 +158,12 @@ class ModelRuntime:
         if self.store is None:
             raise CheckpointError("no checkpoint store in this mode")
         arrays, meta = self.store.load(cid)
-        self.learner.check_header(meta)
-        self.load_arrays(arrays)
+        try:
+            self.learner.check_header(meta)
+            self.load_arrays(arrays)
+        except StateFileError as exc:
+            raise CheckpointError(f"checkpoint {cid} cannot be restored into model {self.name!r}: "
+                                  f"{exc}") from None
         self.checkpoint_id = cid
 
     def restore_good(self) -> str:

@@ -104,6 +104,10 @@ class Service:
         signal.signal(signal.SIGTERM, on_stop)
         signal.signal(signal.SIGINT, on_stop)
         signal.signal(signal.SIGHUP, on_hup)
+        # Past a file-size limit (systemd LimitFSIZE=, ulimit -f) the kernel's default for
+        # SIGXFSZ kills the process; ignored, the write fails with EFBIG and a checkpoint
+        # failure is counted while learning goes on.
+        signal.signal(signal.SIGXFSZ, signal.SIG_IGN)
 
     def _enqueue(self, topic: str, payload: bytes, arrival_t: float) -> None:
         self.inbound.put(Inbound(topic, payload, arrival_t))

@@ -414,3 +414,162 @@ class NotifyListener:
         import shutil
         self.sock.close()
         shutil.rmtree(self.dir, ignore_errors=True)
+
+
+# -- helpers for the fault and security tests ---------------------------------------------------
+
+def rss_mib(pid: int) -> float:
+    """Resident memory of process ``pid`` (VmRSS from /proc), MiB."""
+    with open(f"/proc/{pid}/status") as f:
+        for line in f:
+            if line.startswith("VmRSS:"):
+                return int(line.split()[1]) / 1024.0
+    raise AssertionError(f"no VmRSS for pid {pid}")
+
+
+class ReconnectingProbe(Probe):
+    """A Probe that survives broker restarts (re-subscribes on every connect), with TLS/login.
+
+    ``tls`` is (ca_file, cert_file or None, key_file or None).
+    """
+
+    def __init__(self, broker, subscribe: str = "edgeprop/#", tls: tuple | None = None,
+                 username: str | None = None, password: str | None = None) -> None:
+        import ssl
+        self.messages, self.arrivals = [], []
+        self._lock = threading.Lock()
+        self._topic = subscribe
+        self.client = mqtt.Client(mqtt.CallbackAPIVersion.VERSION2, client_id=f"probe-{time.time_ns()}")
+        self.client.on_message = self._on_message
+        self._subscribed = threading.Event()
+        self.client.on_connect = lambda c, u, f, rc, p: c.subscribe(self._topic, qos=1)
+        self.client.on_subscribe = lambda *a: self._subscribed.set()
+        self.client.reconnect_delay_set(0.05, 0.3)
+        if username is not None:
+            self.client.username_pw_set(username, password)
+        if tls is not None:
+            ctx = ssl.create_default_context(cafile=tls[0])
+            if tls[1]:
+                ctx.load_cert_chain(tls[1], tls[2])
+            self.client.tls_set_context(ctx)
+        self.client.connect(broker.host, broker.port, keepalive=30)
+        self.client.loop_start()
+        assert self._subscribed.wait(5), "probe could not subscribe"
+
+
+class PipedDaemon(Daemon):
+    """``edgeprop run`` whose output goes through a pipe the test copies to ``log_path``.
+
+    For faults that also hit files the daemon writes (a file-size limit): a pipe is not
+    a file, so the daemon's log lines still arrive while its writes to disk fail.
+    """
+
+    def __init__(self, config: str, env: dict | None = None) -> None:
+        self.config = config
+        self.log_path = config + f".{time.time_ns()}.log"
+        self._log = open(self.log_path, "w")
+        self._out = None
+        inherited = {k: v for k, v in os.environ.items() if k not in SYSTEMD_VARS}
+        self.proc = subprocess.Popen([sys.executable, "-m", "daemon.cli", "run", "-c", config],
+                                     stdout=subprocess.PIPE, stderr=subprocess.STDOUT,
+                                     env={**inherited, "PYTHONPATH": ROOT, **(env or {})},
+                                     cwd=os.path.dirname(config))
+        self._copier = threading.Thread(target=self._copy, name="daemon-log-copy", daemon=True)
+        self._copier.start()
+
+    def _copy(self) -> None:
+        for line in iter(self.proc.stdout.readline, b""):
+            self._log.write(line.decode("utf-8", "replace"))
+            self._log.flush()
+
+    def kill(self) -> None:
+        if self.proc.poll() is None:
+            self.proc.kill()
+            self.proc.wait(5)
+        self._copier.join(5)
+        self.proc.stdout.close()
+        self._log.close()
+
+
+# A raw MQTT 3.1.1 QoS 0 publisher (sections 3.1 CONNECT, 3.3 PUBLISH). paho queues QoS 0
+# publishes without bound when the broker pushes back (FIELD-NOTES: 254 MiB); a blocking
+# socket cannot run ahead of the broker, and one Python process sends >100k msg/s this way.
+
+def _mqtt_varint(n: int) -> bytes:
+    out = bytearray()
+    while True:
+        n, digit = divmod(n, 128)
+        out.append(digit | (0x80 if n else 0))
+        if not n:
+            return bytes(out)
+
+
+def _mqtt_str(b: bytes) -> bytes:
+    return len(b).to_bytes(2, "big") + b
+
+
+def mqtt_publish_packet(topic: str, payload: bytes) -> bytes:
+    """One QoS 0 PUBLISH packet."""
+    body = _mqtt_str(topic.encode()) + payload
+    return b"\x30" + _mqtt_varint(len(body)) + body
+
+
+def raw_flood(host: str, port: int, packets: list[bytes], rate: float, seconds: float,
+              count: int | None = None) -> dict:
+    """Send ``packets`` round-robin at ``rate``/s for ``seconds`` (or until ``count`` sent)."""
+    import socket
+    body = _mqtt_str(b"MQTT") + bytes([4, 0x02]) + (0).to_bytes(2, "big") \
+        + _mqtt_str(f"flood-{os.getpid()}".encode())       # clean session, no keepalive
+    with socket.create_connection((host, port), timeout=10) as sock:
+        sock.sendall(b"\x10" + _mqtt_varint(len(body)) + body)
+        ack = sock.recv(4)
+        if ack[:1] != b"\x20" or len(ack) < 4 or ack[3] != 0:
+            raise RuntimeError(f"broker refused the flood connection: {ack!r}")
+        sock.setsockopt(socket.IPPROTO_TCP, socket.TCP_NODELAY, 1)
+        limit = count if count is not None else int(rate * seconds)
+        sent, start = 0, time.monotonic()
+        while sent < limit:
+            elapsed = time.monotonic() - start
+            if elapsed >= seconds:
+                break
+            due = min(limit, int(rate * elapsed) + 1) - sent
+            if due <= 0:
+                time.sleep(0.002)
+                continue
+            due = min(due, 2000)
+            sock.sendall(b"".join(packets[(sent + i) % len(packets)] for i in range(due)))
+            sent += due
+        sock.sendall(b"\xe0\x00")                            # DISCONNECT
+        return {"sent": sent, "seconds": time.monotonic() - start}
+
+
+def flood_process(broker, items: list[tuple[str, bytes | str]], rate: float, seconds: float,
+                  workdir: str, count: int | None = None) -> subprocess.Popen:
+    """Run ``raw_flood`` in a child process; its stdout is one JSON line with sent/seconds."""
+    path = os.path.join(workdir, f"flood-{time.time_ns()}.json")
+    with open(path, "w") as f:
+        json.dump([[t, p if isinstance(p, str) else p.decode("latin-1"), isinstance(p, bytes)]
+                   for t, p in items], f)
+    code = ("import json, sys; from daemon_proc import mqtt_publish_packet, raw_flood\n"
+            "items = json.load(open(sys.argv[1]))\n"
+            "pk = [mqtt_publish_packet(t, p.encode('latin-1') if raw else p.encode()) for t, p, raw in items]\n"
+            "r = sys.argv[2:]\n"
+            "out = raw_flood(r[0], int(r[1]), pk, float(r[2]), float(r[3]), int(r[4]) if r[4] != '-' else None)\n"
+            "print(json.dumps(out), flush=True)\n")
+    here = os.path.dirname(os.path.abspath(__file__))
+    return subprocess.Popen([sys.executable, "-c", code, path, broker.host, str(broker.port),
+                             str(rate), str(seconds), "-" if count is None else str(count)],
+                            stdout=subprocess.PIPE, text=True,
+                            env={**os.environ, "PYTHONPATH": os.pathsep.join([here, ROOT])})
+
+
+def flood_result(proc: subprocess.Popen, timeout: float) -> dict:
+    """Wait for a ``flood_process`` and return its figures."""
+    try:
+        out, _ = proc.communicate(timeout=timeout)
+    except subprocess.TimeoutExpired:
+        proc.kill()
+        proc.communicate()
+        raise AssertionError(f"flood publisher still running after {timeout} s")
+    assert proc.returncode == 0, f"flood publisher failed ({proc.returncode}): {out}"
+    return json.loads(out.strip().splitlines()[-1])

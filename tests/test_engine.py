@@ -206,6 +206,28 @@ def test_nan_before_any_checkpoint_starts_a_fresh_model_that_learns_again(tmp_pa
     assert p.engine.guard_trips == {"m1": 1}
 
 
+@pytest.mark.filterwarnings("ignore:overflow encountered:RuntimeWarning")
+def test_a_state_poisoned_in_warmup_is_never_kept_as_the_good_one(tmp_path) -> None:
+    # A finite but wild target (1e306) during warm-up overflows the target scaler while the
+    # weights stay finite. Kept as "last good", it would trip on every prediction for ever.
+    p = Plant(tmp_path, store=True, warmup=50)
+    p.feed(20)
+    p.inputs()
+    topic, _payload, _truth = next(p.stream)
+    p.index += 1
+    p.engine.handle(topic, json.dumps({"value": 1e306}).encode(), p.now)
+    p.feed(29)
+    assert not np.isfinite(p.rt.learner.y_scaler.std).all()
+    p.engine.checkpoint_all("timer")
+    ((_, failed),) = p.events("checkpoint_failed")
+    assert "non-finite" in failed["error"] and p.rt.good is None and p.rt.checkpoint_id is None
+    assert p.metric("edgeprop_checkpoint_failures_total") == 1
+    p.feed(1)                                        # first prediction: non-finite, not published
+    assert p.bodies == [] and p.events("guard_tripped")[0][1]["restored"] == "fresh"
+    p.feed(200)
+    assert len(p.bodies) == 150 and p.engine.guard_trips == {"m1": 1}
+
+
 def test_absurd_learning_rate_trips_the_guard_until_it_is_safe_and_nothing_non_finite_is_published(
         tmp_path) -> None:
     p = Plant(tmp_path, store=True, warmup=50)

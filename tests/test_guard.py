@@ -12,7 +12,8 @@ from daemon.settings import GuardSettings
 K, N = 10.0, 20
 
 
-def settled(seed: int = 0, samples: int = 400, **overrides) -> tuple[DivergenceGuard, np.random.Generator]:
+def settled(seed: int = 0, samples: int = 400,
+            **overrides: bool) -> tuple[DivergenceGuard, np.random.Generator]:
     """A guard that has seen ``samples`` ordinary losses: squared N(0, 0.3) residuals."""
     guard = DivergenceGuard(GuardSettings(blowup_factor=K, blowup_samples=N, **overrides))
     rng = np.random.default_rng(seed)

@@ -9,12 +9,9 @@ from __future__ import annotations
 import json
 import os
 import re
-import signal
 import time
 
 import numpy as np
-import pytest
-import yaml
 
 from daemon_proc import (Daemon, PacedPublisher, Probe, bearing_stream, checkpoint_ids, cli,
                          control, model_config, offline_runtime, scrape, wait_until, write_config)
