@@ -249,9 +249,11 @@ class Engine:
                      reason="no checkpoint from before the change" if changed_at is not None
                      else "the change is older than the samples remembered since start or restore")
             return
-        monitor = rt.drift          # keeps watching the live stream: flag up, references rebased
+        # the drift watch (flag up, references rebased) and the input histories follow the
+        # live stream; only the learned state goes back
+        monitor, inputs = rt.drift, rt.assembler
         self.rollback(rt.name, cid, cause="drift")
-        rt.drift = monitor
+        rt.drift, rt.assembler = monitor, inputs
 
     # -- operator actions (between two messages) ----------------------------------------
     def rollback(self, model: str, cid: str, cause: str = "operator") -> str:

@@ -339,7 +339,14 @@ class BrokerLink:
             return
         if not was_up:                  # socket opened but no CONNACK came back
             self.connect_failures += 1
-            self._retry_later("broker_connect_failed", f"no answer to CONNECT ({reason})")
+            text = f"no answer to CONNECT ({reason})"
+            tls = self.settings.tls
+            if tls is not None and not tls.cert_file:
+                # what mosquitto with require_certificate does to a client without one: the
+                # handshake completes, then the connection is closed without a word
+                text += ("; the broker closed the TLS connection before answering, as brokers "
+                         "that require a client certificate do: set broker.tls.cert_file and key_file")
+            self._retry_later("broker_connect_failed", text)
             return
         if time.monotonic() - self._connected_at >= STABLE_S:
             self._failures = 0

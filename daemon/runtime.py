@@ -169,7 +169,9 @@ class ModelRuntime:
     def restore_good(self) -> str:
         """Fall back to the last good state (guard); a fresh model if there never was one."""
         if self.good is not None:
+            inputs = self.assembler          # readings are facts about the plant, not the model
             self.load_arrays(self.good)
+            self.assembler = inputs
             return self.checkpoint_id or "memory"
         self.learner = ModelLearner(self.settings)
         self.guard = DivergenceGuard(self.settings.guard)    # a new model has no normal level yet

@@ -15,7 +15,7 @@ import time
 from typing import Callable, Mapping
 
 from . import sdnotify
-from .checkpoints import CheckpointStore
+from .checkpoints import CheckpointStore, ensure_private_dir
 from .config import diff_settings, load_config
 from .control import ControlServer
 from .engine import Engine
@@ -68,6 +68,9 @@ class Service:
         self.exit_code = 0
 
     def _stores(self, settings: Settings) -> dict[str, CheckpointStore]:
+        # The state dir too, not only each model's: whoever may write in it can swap a model's
+        # directory for one of their own, or stand in for the control socket kept there.
+        ensure_private_dir(settings.state_dir)
         return {m.name: CheckpointStore(os.path.join(settings.state_dir, m.name),
                                         settings.checkpoints.keep, clock=self.clock, log=self.log)
                 for m in settings.models}
@@ -104,10 +107,6 @@ class Service:
         signal.signal(signal.SIGTERM, on_stop)
         signal.signal(signal.SIGINT, on_stop)
         signal.signal(signal.SIGHUP, on_hup)
-        # Past a file-size limit (systemd LimitFSIZE=, ulimit -f) the kernel's default for
-        # SIGXFSZ kills the process; ignored, the write fails with EFBIG and a checkpoint
-        # failure is counted while learning goes on.
-        signal.signal(signal.SIGXFSZ, signal.SIG_IGN)
 
     def _enqueue(self, topic: str, payload: bytes, arrival_t: float) -> None:
         self.inbound.put(Inbound(topic, payload, arrival_t))

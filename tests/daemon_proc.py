@@ -6,6 +6,7 @@ daemon publishes, and send it real signals.
 """
 from __future__ import annotations
 
+import contextlib
 import json
 import os
 import re
@@ -573,3 +574,60 @@ def flood_result(proc: subprocess.Popen, timeout: float) -> dict:
         raise AssertionError(f"flood publisher still running after {timeout} s")
     assert proc.returncode == 0, f"flood publisher failed ({proc.returncode}): {out}"
     return json.loads(out.strip().splitlines()[-1])
+
+
+@contextlib.contextmanager
+def edited_broker(edit, **options):
+    """A mosquitto ``BrokerProcess(**options)`` whose config text goes through ``edit`` first.
+
+    Skips where mosquitto is missing, fails under CI=true (as the ``broker`` fixture does).
+    """
+    import pytest
+
+    from broker_fixture import BrokerProcess, BrokerUnavailable
+    proc = None
+    try:
+        proc = BrokerProcess(kind="mosquitto", **options)
+        with open(proc.config_path) as f:
+            text = edit(f.read())
+        with open(proc.config_path, "w") as f:
+            f.write(text)
+        proc.start()
+    except BrokerUnavailable as exc:
+        if proc is not None:
+            proc.close()
+        if os.environ.get("CI", "").lower() == "true":
+            pytest.fail(str(exc))
+        pytest.skip(str(exc))
+    try:
+        yield proc
+    finally:
+        proc.close()
+
+
+def live_broker_log(text: str) -> str:
+    """An ``edited_broker`` edit: log every event type to stderr, unbuffered, as it happens.
+
+    (mosquitto 2.0.11 takes one type per ``log_type`` line, and block-buffers a stdout
+    that is a file, so the fixture's own log shows nothing while the broker runs.)
+    """
+    lines = [l for l in text.splitlines() if not l.startswith(("log_dest", "log_type"))]
+    return "\n".join(lines + ["log_dest stderr", "log_type all"]) + "\n"
+
+
+def set_config_keys(path: str, section: str, **keys: object) -> str:
+    """Set (or, with value ``DELETE``, remove) keys of one section of a config file."""
+    with open(path) as f:
+        cfg = yaml.safe_load(f)
+    part = cfg.setdefault(section, {})
+    for key, value in keys.items():
+        if value is DELETE:
+            part.pop(key, None)
+        else:
+            part[key] = value
+    with open(path, "w") as f:
+        yaml.safe_dump(cfg, f, sort_keys=False)
+    return path
+
+
+DELETE = object()

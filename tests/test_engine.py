@@ -153,12 +153,16 @@ def test_injected_nan_restores_the_last_good_state_and_cuts_the_rate(tmp_path, s
     published = len(p.bodies)
 
     p.rt.learner.net.params[::7] = np.nan            # a corrupted step, between two messages
-    p.feed(1)
+    p.inputs()
+    inputs = p.rt.assembler.state()
+    p.target()
 
     assert len(p.bodies) == published                # nothing published for that reading
     assert np.array_equal(p.rt.learner.net.params, good)
     assert p.rt.learner.samples == 200
     assert p.rt.learner.learning_rate == pytest.approx(lr0 * 0.25)
+    live = p.rt.assembler.state()                    # input histories are not rolled back
+    assert live.keys() == inputs.keys() and all(np.array_equal(live[k], inputs[k]) for k in live)
     assert p.engine.guard_trips == {"m1": 1}
     ((_, trip),) = p.events("guard_tripped")
     assert trip["reason"] == "non_finite" and trip["restored"] == (cid if store else "memory")
@@ -377,6 +381,8 @@ def test_drift_restore_goes_back_to_the_checkpoint_from_before_the_change(tmp_pa
     assert p.rt.checkpoint_id == before_change[-1]
     assert p.rt.learner.samples == 1200
     assert p.metric("edgeprop_rollbacks_total", cause="drift") == 1
+    # the input histories stay live: the newest readings, not those of target 1200 (stale now)
+    assert p.rt.assembler.features_at(p.now).shape == (2,)
     p.feed(20, shift=SHIFT)
     assert flags_after(p, at, 20) == [True] * 20     # the drift watch survives the rollback
     assert p.engine.drift_events == {"m1": 1}

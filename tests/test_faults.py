@@ -18,13 +18,12 @@ import urllib.request
 import pytest
 import yaml
 
-from broker_fixture import BrokerProcess, BrokerUnavailable
 from daemon.config import load_config
 from daemon.errors import ConfigError
 from daemon_proc import (
-    Daemon, PacedPublisher, PipedDaemon, ReconnectingProbe, bearing_stream, checkpoint_ids, control,
-    flood_process, flood_result, model_config, offline_runtime, rss_mib, scrape, wait_until,
-    write_config,
+    Daemon, PacedPublisher, PipedDaemon, ReconnectingProbe, bearing_stream, checkpoint_ids,
+    control, edited_broker, flood_process, flood_result, model_config, offline_runtime, rss_mib,
+    scrape, set_config_keys, wait_until, write_config,
 )
 from nets.store import read_state
 
@@ -48,33 +47,19 @@ def up(daemon: Daemon) -> None:
 @pytest.fixture
 def bounded_broker():
     """mosquitto with ``max_queued_messages BROKER_QUEUE`` (messages beyond it are dropped)."""
-    proc = None
-    try:
-        proc = BrokerProcess(kind="mosquitto")
-        with open(proc.config_path) as f:
-            text = f.read()
-        with open(proc.config_path, "w") as f:
-            f.write(text.replace("max_queued_messages 0", f"max_queued_messages {BROKER_QUEUE}"))
-        proc.start()
-    except BrokerUnavailable as exc:
-        if proc is not None:
-            proc.close()
-        if os.environ.get("CI", "").lower() == "true":
-            pytest.fail(str(exc))
-        pytest.skip(str(exc))
-    try:
+    with edited_broker(lambda text: text.replace("max_queued_messages 0",
+                                                 f"max_queued_messages {BROKER_QUEUE}")) as proc:
         yield proc
-    finally:
-        proc.close()
 
 
 # ---- the broker dies and comes back ----------------------------------------------------------
 
 def test_broker_killed_and_restarted_ten_times_while_traffic_flows(broker, tmp_path):
     cfg = write_config(tmp_path, broker, [model_config(warmup=20)],
-                       broker={"reconnect_min_s": 0.2, "reconnect_max_s": 2.0},
-                       checkpoints={"every_s": 1.0, "keep": 5},
-                       metrics={"listen": "127.0.0.1:0"})
+                       checkpoints={"every_s": 1.0, "keep": 5}, metrics={"listen": "127.0.0.1:0"})
+    # backoff up to 2 s (default 30 s): predictions can resume within 5 s of a restart only if
+    # the daemon retries at least that often; the README states this
+    set_config_keys(cfg, "broker", reconnect_min_s=0.2, reconnect_max_s=2.0)
     daemon = Daemon(cfg)
     probe = pub = None
     try:
@@ -240,11 +225,13 @@ def test_checkpoint_write_failure_keeps_the_previous_one_and_learning_goes_on(br
         probe = ReconnectingProbe(broker)
         pub = PacedPublisher(probe, rate=20)
         wait_until(lambda: daemon.log().count("reason=timer") >= 2, 15, "two timer checkpoints")
-        last_good = checkpoint_ids(str(state))[-1]
+        last_good = checkpoint_ids(str(tmp_path / "state"))[-1]
         size = os.path.getsize(state / f"{last_good}.npz")
-        # A file-size limit below one checkpoint, set on the running process as root (as
-        # `prlimit --fsize` would): permission bits do not stop root, this does.
-        resource.prlimit(daemon.proc.pid, resource.RLIMIT_FSIZE, (size // 2, size // 2))
+        # A file-size limit below one checkpoint, set on the running process (as `prlimit
+        # --fsize` would): permission bits do not stop root, this does. Soft limit only, so
+        # it can be lifted again without privileges.
+        hard = resource.prlimit(daemon.proc.pid, resource.RLIMIT_FSIZE)[1]
+        resource.prlimit(daemon.proc.pid, resource.RLIMIT_FSIZE, (size // 2, hard))
         failing_since = time.monotonic()
         wait_until(lambda: daemon.log().count("event=checkpoint_failed") >= 3, 15, "3 failed checkpoints")
         up(daemon)
@@ -253,7 +240,7 @@ def test_checkpoint_write_failure_keeps_the_previous_one_and_learning_goes_on(br
         samples = counter(scrape(url), "edgeprop_checkpoint_failures_total", model="m1")
         assert samples >= 3
         # the previous checkpoint is still the newest, whole, and loads; no temp file is left
-        assert checkpoint_ids(str(state))[-1] == last_good
+        assert checkpoint_ids(str(tmp_path / "state"))[-1] == last_good
         assert not [n for n in os.listdir(state) if n.endswith(".tmp")]
         rt, _ = offline_runtime(cfg, last_good)
         assert rt.learner.weights_finite()
@@ -263,10 +250,9 @@ def test_checkpoint_write_failure_keeps_the_previous_one_and_learning_goes_on(br
         wait_until(lambda: daemon.status()["models"]["m1"]["samples"] >= before + 20, 10,
                    "more samples learned")
         # the disk recovers: the next timer save succeeds
-        resource.prlimit(daemon.proc.pid, resource.RLIMIT_FSIZE,
-                         (resource.RLIM_INFINITY, resource.RLIM_INFINITY))
-        wait_until(lambda: checkpoint_ids(str(state))[-1] != last_good, 10, "a new checkpoint")
-        offline_runtime(cfg, checkpoint_ids(str(state))[-1])
+        resource.prlimit(daemon.proc.pid, resource.RLIMIT_FSIZE, (hard, hard))
+        wait_until(lambda: checkpoint_ids(str(tmp_path / "state"))[-1] != last_good, 10, "a new checkpoint")
+        offline_runtime(cfg, checkpoint_ids(str(tmp_path / "state"))[-1])
     finally:
         if pub is not None:
             pub.stop()
