@@ -35,30 +35,17 @@ the recent-mean shift in reference spreads; coverage is the interval's achieved 
 """
 from __future__ import annotations
 
-import base64
-import hmac
 import math
-import os
 import platform
 import re
-import socket
-import ssl
-import stat
-import threading
 import time
-from dataclasses import dataclass
 from typing import Any, Callable, Iterable, Optional
-from wsgiref.simple_server import WSGIRequestHandler, WSGIServer, make_server
 
 import numpy as np
-from prometheus_client import (CollectorRegistry, Counter, Gauge, Histogram, Info,
-                               make_wsgi_app, start_http_server)
-from prometheus_client.exposition import ThreadingWSGIServer
+from prometheus_client import CollectorRegistry, Counter, Gauge, Histogram, Info
 
 from daemon import __version__
-from daemon.errors import ConfigError, EdgepropError
 from daemon.guard import REASONS as GUARD_REASONS
-from daemon.settings import MetricsSettings
 
 PREFIX = "edgeprop_"
 # Per-message processing time runs from ~20 us (a rejected reading) to tens of ms (a sample
@@ -466,151 +453,7 @@ class _WindowStats:
         return [float(np.sqrt(np.mean(e * e))), *np.percentile(e, RESIDUAL_PERCENTILES).tolist()]
 
 
-# --- HTTP endpoint ----------------------------------------------------------------------------
+# The endpoint lives in its own module; re-exported so callers import one place.
+from daemon.metrics_http import MetricsServer, parse_listen, read_password, serve  # noqa: E402,F401
 
-def parse_listen(listen: str) -> tuple[str, int]:
-    """Split ``HOST:PORT`` (IPv6 as ``[::1]:9740``) into host and port."""
-    m = re.fullmatch(r"\[([0-9A-Fa-f:.%a-zA-Z]+)\]:(\d{1,5})|([^:\[\]\s]+):(\d{1,5})", listen)
-    port = int(m.group(2) or m.group(4)) if m else -1
-    if not m or port > 65535:
-        raise ConfigError([f"metrics.listen: {listen!r} is not HOST:PORT (port 0-65535; IPv6 "
-                           "as [::1]:9740; use null to turn the endpoint off)"])
-    return m.group(1) or m.group(3), port
-
-
-@dataclass
-class MetricsServer:
-    """A running metrics endpoint; ``close()`` stops it and frees the port."""
-
-    httpd: WSGIServer
-    thread: threading.Thread
-    tls: bool
-
-    @property
-    def host(self) -> str:
-        return str(self.httpd.server_address[0])
-
-    @property
-    def port(self) -> int:
-        return int(self.httpd.server_address[1])
-
-    @property
-    def url(self) -> str:
-        host = f"[{self.host}]" if ":" in self.host else self.host
-        return f"{'https' if self.tls else 'http'}://{host}:{self.port}/metrics"
-
-    def close(self) -> None:
-        """Stop serving and close the listening socket."""
-        self.httpd.shutdown()
-        self.httpd.server_close()
-        self.thread.join(timeout=5)
-
-    shutdown = close
-
-
-def serve(settings: MetricsSettings, registry: CollectorRegistry) -> Optional[MetricsServer]:
-    """Start the scrape endpoint in a daemon thread; None when ``listen`` is null."""
-    if settings.listen is None:
-        return None
-    host, port = parse_listen(settings.listen)
-    tls = settings.tls
-    if tls is not None:
-        _tls_context(tls.cert_file, tls.key_file)        # fail early, with a clear message
-    try:
-        if settings.basic_auth is None:
-            # prometheus-client's own server, TLS included (0.26: certfile=/keyfile=).
-            httpd, thread = start_http_server(port, host, registry,
-                                              certfile=tls.cert_file if tls else None,
-                                              keyfile=tls.key_file if tls else None)
-            _harden(httpd)
-        else:
-            password = read_password(settings.basic_auth.password_file)
-            app = _basic_auth(make_wsgi_app(registry), settings.basic_auth.username, password)
-            httpd, thread = _start_wsgi(host, port, app, tls)
-    except OSError as e:
-        raise EdgepropError(f"metrics.listen {settings.listen!r}: cannot listen ({e}); "
-                            "choose a free port or set metrics.listen: null") from e
-    return MetricsServer(httpd, thread, tls is not None)
-
-
-def read_password(path: str) -> str:
-    """Read a one-line password from a file that only its owner may read."""
-    key = "metrics.basic_auth.password_file"
-    try:
-        if os.stat(path).st_mode & (stat.S_IRWXG | stat.S_IRWXO):
-            raise ConfigError([f"{key}: {path} is readable by group/others; chmod 600 it"])
-        with open(path, encoding="utf-8") as f:
-            password = f.readline().rstrip("\r\n")
-    except (OSError, UnicodeDecodeError) as e:
-        raise ConfigError([f"{key}: cannot read {path}: {e}"]) from e
-    if not password:
-        raise ConfigError([f"{key}: {path} is empty; put the password on its first line"])
-    return password
-
-
-def _tls_context(cert_file: str, key_file: str) -> ssl.SSLContext:
-    ctx = ssl.SSLContext(ssl.PROTOCOL_TLS_SERVER)
-    try:
-        ctx.load_cert_chain(cert_file, key_file)
-    except (OSError, ssl.SSLError) as e:
-        raise ConfigError([f"metrics.tls: cannot load cert_file {cert_file} / key_file "
-                           f"{key_file}: {e}"]) from e
-    return ctx
-
-
-def _basic_auth(app: Callable, username: str, password: str) -> Callable:
-    """Wrap a WSGI app so only requests with the right Basic credentials reach it."""
-    user_b, pass_b = username.encode(), password.encode()
-
-    def guarded(environ: dict, start_response: Callable) -> Iterable[bytes]:
-        scheme, _, token = environ.get("HTTP_AUTHORIZATION", "").partition(" ")
-        try:
-            given_user, _, given_pass = base64.b64decode(token.strip(), validate=True
-                                                         ).partition(b":")
-        except ValueError:
-            given_user = given_pass = b""
-        user_ok = hmac.compare_digest(given_user, user_b)
-        pass_ok = hmac.compare_digest(given_pass, pass_b)     # both compared, always
-        if scheme.lower() == "basic" and user_ok and pass_ok:
-            return app(environ, start_response)
-        start_response("401 Unauthorized",
-                       [("WWW-Authenticate", 'Basic realm="edgeprop metrics", charset="UTF-8"'),
-                        ("Content-Type", "text/plain; charset=utf-8")])
-        return [b"credentials required\n"]
-    return guarded
-
-
-class _QuietHandler(WSGIRequestHandler):
-    timeout = 10                             # a stalled client cannot hold a thread forever
-
-    def log_message(self, format: str, *args: Any) -> None:
-        pass                                 # scrapes every 15 s would flood the journal
-
-
-def _harden(httpd: WSGIServer) -> None:
-    """Keep one silent client from freezing the endpoint (measured: it did, under TLS).
-
-    The TLS handshake otherwise runs inside ``accept()`` on the single serving thread, so a
-    client that connects and never speaks blocks every scrape. Deferred, it runs in the
-    connection's own thread, bounded by the handler timeout. Both are public attributes of
-    the standard library's ``ssl.SSLSocket`` and ``socketserver.BaseServer``.
-    """
-    if isinstance(httpd.socket, ssl.SSLSocket):
-        httpd.socket.do_handshake_on_connect = False
-    httpd.RequestHandlerClass = _QuietHandler
-
-
-def _start_wsgi(host: str, port: int, app: Callable, tls: Any
-                ) -> tuple[WSGIServer, threading.Thread]:
-    """Serve ``app`` from wsgiref in a daemon thread (the basic-auth path)."""
-    family = socket.getaddrinfo(host, port, type=socket.SOCK_STREAM,
-                                flags=socket.AI_PASSIVE)[0][0]
-    server_class = type("_Server", (ThreadingWSGIServer,), {"address_family": family})
-    httpd = make_server(host, port, app, server_class, handler_class=_QuietHandler)
-    if tls is not None:
-        ctx = _tls_context(tls.cert_file, tls.key_file)
-        httpd.socket = ctx.wrap_socket(httpd.socket, server_side=True,
-                                       do_handshake_on_connect=False)
-    thread = threading.Thread(target=httpd.serve_forever, name="metrics-http", daemon=True)
-    thread.start()
-    return httpd, thread
+__all__ = ["Metrics", "ModelMetrics", "MetricsServer", "parse_listen", "read_password", "serve"]
