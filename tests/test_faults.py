@@ -99,6 +99,7 @@ def test_broker_killed_and_restarted_ten_times_while_traffic_flows(broker, tmp_p
     log = daemon.log()
     assert code == 0, log[-3000:]
     assert "worker_failed" not in log and "checkpoint_failed" not in log
+    assert log.count("reason=timer") >= 10, "checkpoints were not taken through the restarts"
     ids = checkpoint_ids(str(tmp_path / "state"))
     assert len(ids) >= 2, ids
     leftovers = [n for n in os.listdir(tmp_path / "state" / "m1") if n.endswith(".tmp")]
@@ -112,21 +113,30 @@ def test_broker_killed_and_restarted_ten_times_while_traffic_flows(broker, tmp_p
 # ---- a flood -------------------------------------------------------------------------------
 
 def _capacity(daemon: Daemon, broker, tmp_path, items: list) -> float:
-    """Messages/s the daemon handles, from a burst it must queue (below its queue size)."""
+    """Messages/s the daemon handles, timed from its first to its last message of a burst.
+
+    The burst (6,000) fits the inbound queue, so nothing is dropped and the worker is never
+    idle in between; timing from the first handled message leaves the publisher's start-up
+    out, so the figure errs high and ten times it is at least ten times the real capacity.
+    """
     wait_until(lambda: daemon.status()["queue_depth"] == 0, 10, "an empty queue")
-    before = daemon.status()["messages"]
-    burst = 6000
-    start = time.monotonic()
-    flood_result(flood_process(broker, items, 1e9, 10, str(tmp_path), count=burst), 20)
-    wait_until(lambda: daemon.status()["messages"] - before >= burst, 20, "the burst handled",
-               every=0.02)
-    return burst / (time.monotonic() - start)
+    before, burst = daemon.status()["messages"], 6000
+    flood = flood_process(broker, items, 1e9, 10, str(tmp_path), count=burst)
+    first = wait_until(lambda: (lambda n: n > before and (time.monotonic(), n))(
+        daemon.status()["messages"]), 20, "the burst to arrive", every=0.01)
+    last = wait_until(lambda: daemon.status()["messages"] >= before + burst and time.monotonic(),
+                      20, "the burst handled", every=0.01)
+    flood_result(flood, 10)
+    return (before + burst - first[1]) / (last - first[0])
 
 
 def test_flood_at_ten_times_capacity_is_bounded_counted_and_drains(bounded_broker, tmp_path):
     broker = bounded_broker
-    cfg = write_config(tmp_path, broker, [model_config(warmup=20)],
-                       metrics={"listen": "127.0.0.1:0"})
+    # A model that makes the worker, not paho's reader (~9k msg/s, FIELD-NOTES), the bottleneck:
+    # then the overflow happens in the daemon's own queue, where it is counted. (With a worker
+    # as fast as the reader, the backlog would sit in the broker, which drops it silently.)
+    model = model_config(warmup=20, hidden=(64, 64), training={"steps_per_sample": 2})
+    cfg = write_config(tmp_path, broker, [model], metrics={"listen": "127.0.0.1:0"})
     daemon = Daemon(cfg)
     probe = None
     try:
@@ -180,7 +190,8 @@ def test_flood_at_ten_times_capacity_is_bounded_counted_and_drains(bounded_broke
     finally:
         if probe is not None:
             probe.close()
-        assert daemon.stop() == 0, daemon.log()[-3000:]
+        code = daemon.stop()
+    assert code == 0, daemon.log()[-3000:]
 
 
 def test_flood_of_large_payloads_stays_within_the_byte_budget(bounded_broker, tmp_path):
@@ -194,7 +205,7 @@ def test_flood_of_large_payloads_stays_within_the_byte_budget(bounded_broker, tm
         # A SenML-sized pack the worker parses slower than paho reads it: the queue fills.
         big = json.dumps({"value": 1.0, "pad": [0] * 21000})         # ~63 kB, under 64 KiB
         assert len(big) < 65536
-        flood = flood_process(broker, [("site/p1/speed", big)], 3000, 8, str(tmp_path))
+        flood = flood_process(broker, [("site/p1/speed", big)], 5000, 8, str(tmp_path))
         rss_peak = rss_before
         while flood.poll() is None:
             rss_peak = max(rss_peak, rss_mib(daemon.proc.pid))
@@ -207,7 +218,8 @@ def test_flood_of_large_payloads_stays_within_the_byte_budget(bounded_broker, tm
         assert rss_peak <= rss_before + 48, f"RSS {rss_before:.0f} -> {rss_peak:.0f} MiB"
         print(f"RSS {rss_before:.1f} -> peak {rss_peak:.1f} MiB, dropped {status['queue_dropped']}")
     finally:
-        assert daemon.stop() == 0, daemon.log()[-3000:]
+        code = daemon.stop()
+    assert code == 0, daemon.log()[-3000:]
 
 
 # ---- the disk refuses a checkpoint -------------------------------------------------------------
@@ -237,8 +249,7 @@ def test_checkpoint_write_failure_keeps_the_previous_one_and_learning_goes_on(br
         up(daemon)
         failed_line = next(l for l in daemon.log().splitlines() if "event=checkpoint_failed" in l)
         assert "File too large" in failed_line and "earlier checkpoints are untouched" in failed_line
-        samples = counter(scrape(url), "edgeprop_checkpoint_failures_total", model="m1")
-        assert samples >= 3
+        assert counter(scrape(url), "edgeprop_checkpoint_failures_total", model="m1") >= 3
         # the previous checkpoint is still the newest, whole, and loads; no temp file is left
         assert checkpoint_ids(str(tmp_path / "state"))[-1] == last_good
         assert not [n for n in os.listdir(state) if n.endswith(".tmp")]
@@ -304,7 +315,8 @@ def _invalid_configs(good: dict, rng: random.Random, n: int) -> list[bytes | Non
                 doc["models"][0].setdefault(section, {})[key] = value
             else:
                 key, value = rng.choice(top_bad)
-                doc[key] = {**doc[key], **value} if isinstance(value, dict) and isinstance(doc.get(key), dict) else value
+                merge = isinstance(value, dict) and isinstance(doc.get(key), dict)
+                doc[key] = {**doc[key], **value} if merge else value
             data = yaml.safe_dump(doc, sort_keys=False).encode()
         out.append(data)
     return out

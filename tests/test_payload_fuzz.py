@@ -140,7 +140,8 @@ class Rig:
         assert rejected <= routes, f"{delta} for {routes} route(s): {where}"
         kind, reasons = expect
         if kind == "reject":
-            assert rejected == routes and set(delta) <= reasons, f"expected {set(reasons)}, got {delta}: {where}"
+            assert rejected == routes and set(delta) <= reasons, \
+                f"expected {set(reasons)}, got {delta}: {where}"
         elif kind == "accept":
             assert rejected == 0, f"expected acceptance, got {delta}: {where}"
         samples = sum(rt.learner.samples for rt in e.models.values()) - samples_before

@@ -330,6 +330,7 @@ GARBAGE = [  # (topic, payload, reason counted) - model_config: speed JSON "valu
     ("site/p1/current", b"-Infinity", "non_finite"),
     ("site/p1/current", b"1e999", "non_finite"),
     ("site/p1/current", b"7" * 600, "oversize"),                       # max_payload_bytes 512
+    ("site/p1/current", b"8" * 200_000, "oversize"),                   # spans several socket reads
     ("site/p1/current", b'{"value": 3}', "wrong_type"),                # object, no field set
     ("site/p1/current", b"true", "wrong_type"),
     ("site/p1/current", b"[1, 2]", "bad_senml"),                       # a list is read as SenML
