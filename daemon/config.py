@@ -156,6 +156,7 @@ _MODEL = _Section(S.ModelSettings, {
     "align": _Section(S.AlignSettings, {
         "max_age_s": _POS,
         "late_tolerance_s": _Float(0),
+        "max_ahead_s": _POS,
         "history": _Int(1, 1_000_000),
     }),
     "net": _Section(S.NetSettings, {

@@ -70,6 +70,7 @@ class Engine:
             rt = self.models[route.model]
             try:
                 readings = decode(payload, route.source, arrival_t, self.settings.broker.max_payload_bytes)
+                _refuse_future(readings, arrival_t, rt.settings.align.max_ahead_s)
                 if route.role == TARGET_ROLE:
                     for reading in readings:
                         self._on_target(rt, reading.t, reading.value)
@@ -297,6 +298,17 @@ class Engine:
         """Hot-apply what can change live; return refusals (the rest is applied)."""
         from .reload import apply_to_engine
         return apply_to_engine(self, new)
+
+
+def _refuse_future(readings: list, arrival_t: float, max_ahead_s: float | None) -> None:
+    """A sensor clock far ahead would block its input (later readings look late) until it passes."""
+    if max_ahead_s is None:
+        return
+    for reading in readings:
+        if reading.t - arrival_t > max_ahead_s:
+            raise PayloadError("future_time", f"sensor time {reading.t:.3f} is {reading.t - arrival_t:.0f} s "
+                               f"ahead of arrival; align.max_ahead_s is {max_ahead_s:g} "
+                               f"(check the sensor's clock and time unit)")
 
 
 def model_settings_shape(m: ModelSettings) -> tuple:

@@ -142,6 +142,9 @@ def _finite(v: float | int, what: str, source: SourceSettings) -> float:
         x = math.inf
     if not math.isfinite(x):
         raise PayloadError("non_finite", f"{what!r} in payload on {source.topic!r} is {x}")
+    if abs(x) > MAX_MAGNITUDE:
+        raise PayloadError("out_of_range", f"{what!r} in payload on {source.topic!r} is {x:g}; "
+                           f"readings beyond +-{MAX_MAGNITUDE:g} are taken for a faulty sensor")
     return x
 
 
@@ -288,6 +291,9 @@ def _senml_value(name: str, rec: dict, source: SourceSettings) -> float:
 
 # --- routing -----------------------------------------------------------------
 
+# No plant reading in any unit comes near this; a value beyond it is a glitch that would overflow
+# the running standardisers and drift references (squares of 1e306 are inf). Common practice, no source.
+MAX_MAGNITUDE = 1e12
 TARGET_ROLE = "<target>"   # cannot clash with an input name: those are [A-Za-z0-9_]+
 
 

@@ -94,6 +94,7 @@ class InputSettings:
 class AlignSettings:
     max_age_s: float = 60.0
     late_tolerance_s: float = 5.0            # readings older than newest-minus-this are dropped
+    max_ahead_s: Optional[float] = 3600.0    # sensor times further ahead of arrival are refused
     history: int = 512                       # readings kept per input
 
 

@@ -212,15 +212,21 @@ def test_nan_before_any_checkpoint_starts_a_fresh_model_that_learns_again(tmp_pa
 
 @pytest.mark.filterwarnings("ignore:overflow encountered:RuntimeWarning")
 def test_a_state_poisoned_in_warmup_is_never_kept_as_the_good_one(tmp_path) -> None:
-    # A finite but wild target (1e306) during warm-up overflows the target scaler while the
-    # weights stay finite. Kept as "last good", it would trip on every prediction for ever.
+    # A finite but wild target (1e306) would overflow the target scaler while the weights stay
+    # finite. Decoding refuses it (out_of_range); should a scaler still be poisoned, a state
+    # kept as "last good" would trip on every prediction for ever, so it must never be kept.
     p = Plant(tmp_path, store=True, warmup=50)
     p.feed(20)
     p.inputs()
     topic, _payload, _truth = next(p.stream)
     p.index += 1
     p.engine.handle(topic, json.dumps({"value": 1e306}).encode(), p.now)
-    p.feed(29)
+    assert p.engine.rejects.get("out_of_range") == 1
+    assert np.isfinite(p.rt.learner.y_scaler.std).all()
+    p.feed(30)                                # the refused reading was no sample: 50 now
+    scaler = p.rt.learner.y_scaler            # poison it as an overflow would have
+    scaler.m2[:] = np.inf
+    scaler._refresh_std()
     assert not np.isfinite(p.rt.learner.y_scaler.std).all()
     p.engine.checkpoint_all("timer")
     ((_, failed),) = p.events("checkpoint_failed")

@@ -100,6 +100,19 @@ def test_non_finite(payload, source):
     assert reason(payload, source) == "non_finite"
 
 
+@pytest.mark.parametrize("payload, source", [
+    ("1e306", BARE), ("-2e12", BARE), ('{"value": 1e13}', FLOW),
+    ('[{"n": "flow", "v": 5e300}]', SourceSettings("site/p1/flow", "flow")),
+])
+def test_implausibly_large_readings_are_out_of_range(payload, source):
+    # finite, but they would overflow the running standardisers (x**2 is inf beyond ~1e154)
+    assert reason(payload, source) == "out_of_range"
+
+
+def test_largest_plausible_reading_is_kept():
+    assert decode(b"1e12", BARE, 0.0, 1024)[0].value == 1e12
+
+
 def test_non_finite_in_an_unread_field_is_tolerated():
     # A sibling channel reporting NaN must not cost us the good reading.
     assert dec('{"value": 41.5, "spare": NaN}', FLOW) == [Reading(ARRIVAL, 41.5)]
@@ -338,7 +351,7 @@ def _check_outcome(payload: bytes, source: SourceSettings) -> None:
     try:
         out = decode(payload, source, ARRIVAL, 4096)
     except PayloadError as exc:
-        assert exc.reason in {"oversize", "undecodable", "non_finite", "wrong_type",
+        assert exc.reason in {"oversize", "undecodable", "non_finite", "out_of_range", "wrong_type",
                               "missing_field", "bad_time", "bad_senml"}
         return
     assert out and all(math.isfinite(r.t) and math.isfinite(r.value) for r in out)
