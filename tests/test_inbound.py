@@ -104,3 +104,20 @@ def test_producer_never_waits_for_a_slow_consumer_and_nothing_is_lost_unaccounte
 def test_capacity_must_be_a_positive_integer(bad):
     with pytest.raises(ValueError, match="capacity"):
         InboundQueue(bad)
+
+
+def test_byte_bound_drops_oldest_payloads_and_keeps_the_newest():
+    # 10 payloads of 100 bytes against a 350-byte budget: only the newest 3 fit
+    q = InboundQueue(1000, max_bytes=350)
+    for i in range(10):
+        q.put(Inbound("site/p1/flow", bytes([48 + i]) * 100, float(i)))
+    assert q.depth == 3 and q.bytes == 300 and q.dropped == 7
+    got = q.get_many(10, timeout=0.1)
+    assert [m.arrival_t for m in got] == [7.0, 8.0, 9.0]
+    assert q.bytes == 0
+
+
+def test_one_payload_over_the_byte_bound_is_still_kept_alone():
+    q = InboundQueue(10, max_bytes=50)
+    q.put(Inbound("site/p1/flow", b"x" * 80, 1.0))
+    assert q.depth == 1 and q.dropped == 0
