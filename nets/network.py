@@ -30,6 +30,18 @@ class _Buffers:
         self.deltas = [np.empty((batch, n), dtype) for n in sizes[1:]]
         self.tmps = [np.empty((batch, n), dtype) for n in sizes[1:]]
         self.ones = np.ones(batch, dtype)      # bias gradient = ones @ delta: one BLAS call
+        self.forward_plan: list[tuple] = []
+        self.backward_plan: list[tuple] = []
+
+    def plan(self, net: "Network") -> None:
+        """Bind every array the passes touch once, so a step does no lookups or view creation."""
+        n = len(net.weights)
+        self.forward_plan = [(net.weights[i], net.biases[i], self.outs[i], i < n - 1) for i in range(n)]
+        self.backward_plan = [
+            (None if i == 0 else self.outs[i - 1].T, net.weight_grads[i], net.bias_grads[i],
+             net.weights[i].T, None if i == 0 else self.deltas[i - 1],
+             None if i == 0 else self.outs[i - 1], None if i == 0 else self.tmps[i - 1])
+            for i in range(n - 1, -1, -1)]
 
 
 class Network:
@@ -98,6 +110,7 @@ class Network:
             if len(self._buffers) > 8:      # odd batch sizes (window filling up) must not pile up
                 self._buffers.clear()
             buf = self._buffers[batch] = _Buffers(self.sizes, batch, self.dtype)
+            buf.plan(self)
         return buf
 
     def forward(self, x: np.ndarray) -> np.ndarray:
@@ -105,11 +118,10 @@ class Network:
         buf = self._buf(x.shape[0])
         act = self._act.forward
         a = x
-        last = len(self.weights) - 1
-        for i, (w, b, out) in enumerate(zip(self.weights, self.biases, buf.outs)):
+        for w, b, out, hidden in buf.forward_plan:
             np.dot(a, w, out=out)
             out += b
-            if i < last:
+            if hidden:
                 act(out)
             a = out
         return a
@@ -126,14 +138,13 @@ class Network:
         delta = buf.deltas[-1]
         value = loss.value_and_grad(z, y, out=delta)
         backprop = self._act.backprop
-        for i in range(len(self.weights) - 1, -1, -1):
-            a_prev = x if i == 0 else buf.outs[i - 1]
-            np.dot(a_prev.T, delta, out=self.weight_grads[i])
-            np.dot(buf.ones, delta, out=self.bias_grads[i])
-            if i > 0:
-                prev = buf.deltas[i - 1]
-                np.dot(delta, self.weights[i].T, out=prev)
-                backprop(buf.outs[i - 1], prev, buf.tmps[i - 1])
+        ones = buf.ones
+        for a_prev_t, w_grad, b_grad, w_t, prev, a_prev, tmp in buf.backward_plan:
+            np.dot(x.T if a_prev_t is None else a_prev_t, delta, out=w_grad)
+            np.dot(ones, delta, out=b_grad)
+            if prev is not None:
+                np.dot(delta, w_t, out=prev)
+                backprop(a_prev, prev, tmp)
                 delta = prev
         return value
 
