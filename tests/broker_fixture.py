@@ -260,11 +260,16 @@ def _start_or_fail(**options: object) -> BrokerProcess:
         proc = BrokerProcess(**options)   # type: ignore[arg-type]
         return proc.start()
     except BrokerUnavailable as exc:
-        if proc is not None:
-            proc.close()
-        if os.environ.get("CI", "").lower() == "true":
-            pytest.fail(str(exc))
-        pytest.skip(str(exc))
+        unavailable(exc, proc)
+
+
+def unavailable(exc: BrokerUnavailable, proc: "BrokerProcess | None") -> None:
+    """Clean up a broker that could not start; fail under CI=true, skip elsewhere."""
+    if proc is not None:
+        proc.close()
+    if os.environ.get("CI", "").lower() == "true":
+        pytest.fail(str(exc))
+    pytest.skip(str(exc))
 
 
 @pytest.fixture

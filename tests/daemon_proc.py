@@ -192,12 +192,7 @@ class Probe:
             return [p for t, p in self.messages if t == topic]
 
     def wait_for(self, pred, timeout: float = 15.0, what: str = "condition") -> None:
-        deadline = time.monotonic() + timeout
-        while time.monotonic() < deadline:
-            if pred():
-                return
-            time.sleep(0.05)
-        raise AssertionError(f"timed out waiting for {what}")
+        wait_until(pred, timeout, what)
 
     def close(self) -> None:
         self.client.loop_stop()
@@ -582,9 +577,7 @@ def edited_broker(edit, **options):
 
     Skips where mosquitto is missing, fails under CI=true (as the ``broker`` fixture does).
     """
-    import pytest
-
-    from broker_fixture import BrokerProcess, BrokerUnavailable
+    from broker_fixture import BrokerProcess, BrokerUnavailable, unavailable
     proc = None
     try:
         proc = BrokerProcess(kind="mosquitto", **options)
@@ -594,11 +587,7 @@ def edited_broker(edit, **options):
             f.write(text)
         proc.start()
     except BrokerUnavailable as exc:
-        if proc is not None:
-            proc.close()
-        if os.environ.get("CI", "").lower() == "true":
-            pytest.fail(str(exc))
-        pytest.skip(str(exc))
+        unavailable(exc, proc)
     try:
         yield proc
     finally:

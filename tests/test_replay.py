@@ -19,7 +19,7 @@ from daemon.config import load_config, parse_config
 from daemon.control import request
 from daemon.record import record
 from daemon.replay import bad_line_kind, replay, score_messages
-from daemon_proc import ROOT, Daemon, Probe, model_config, write_config
+from daemon_proc import ROOT, Daemon, Probe, model_config, wait_until, write_config
 
 T0 = 1_765_000_000.0
 
@@ -90,12 +90,7 @@ def _status(config: str) -> dict:
 
 
 def _wait(pred, timeout: float, what: str) -> None:
-    deadline = time.monotonic() + timeout
-    while time.monotonic() < deadline:
-        if pred():
-            return
-        time.sleep(0.05)
-    raise AssertionError(f"timed out waiting for {what}")
+    wait_until(pred, timeout, what)
 
 
 @pytest.mark.integration
