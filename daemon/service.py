@@ -29,6 +29,7 @@ from .settings import Settings
 READY_WITHOUT_BROKER_S = 20.0   # report ready anyway, so a broker outage at boot is no restart loop
 STOP_DEADLINE_S = 4.0           # finish, save and disconnect within this after SIGTERM
 BATCH = 256                     # messages taken from the queue under one lock
+HOUSEKEEPING_S = 0.05           # timers, control requests, metrics between messages at most this often
 # Payload bytes the inbound queue may hold, whatever broker.queue_size says: with the default
 # 10,000 readings and 64 kB payloads the count alone would allow 640 MB. 16 MiB is sixteen
 # full queues of ~100-byte readings yet small beside an edge board's RAM (common practice, no source).
@@ -117,12 +118,20 @@ class Service:
     # -- the worker ---------------------------------------------------------------------
     def _worker(self) -> None:
         try:
+            last_housekeeping = 0.0
             while not self.flags.stop:
-                for item in self.inbound.get_many(BATCH, timeout=0.2):
+                items = self.inbound.get_many(BATCH, timeout=0.2)
+                for item in items:
                     self._handle_one(item)
                     if self.flags.stop:
                         break
-                self._between_messages()
+                now = time.monotonic()
+                # A wake-up with nothing to read is a signal or a control request: act at once.
+                # Otherwise housekeeping every HOUSEKEEPING_S is plenty, and at one message per
+                # wake-up it would cost more than the message itself.
+                if not items or now - last_housekeeping >= HOUSEKEEPING_S:
+                    last_housekeeping = now
+                    self._between_messages()
         except Exception as exc:  # the one catch-all: log it, still try to shut down cleanly
             self.log("error", "worker_failed", error=f"{type(exc).__name__}: {exc}")
             self.exit_code = 1
