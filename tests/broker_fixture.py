@@ -7,6 +7,7 @@ required, because amqtt speaks MQTT 3.1.1 only and is 4-5x slower (FIELD-NOTES).
 """
 from __future__ import annotations
 
+import contextlib
 import os
 import shutil
 import signal
@@ -297,3 +298,21 @@ def broker_factory() -> Iterator:
     finally:
         for proc in started:
             proc.close()
+
+
+@contextlib.contextmanager
+def temporary_pki() -> Iterator[TlsFiles]:
+    """A fresh CA with server and client certificates (openssl) in a temporary directory."""
+    directory = tempfile.mkdtemp(prefix="edgeprop-pki-")
+    try:
+        yield make_test_pki(directory)
+    finally:
+        shutil.rmtree(directory, ignore_errors=True)
+
+
+@pytest.fixture(scope="module")
+def pki() -> Iterator[TlsFiles]:
+    """A CA with a server certificate for 127.0.0.1 and a client certificate (openssl)."""
+    with temporary_pki() as files:
+        yield files
+

@@ -333,15 +333,6 @@ def test_password_login_and_wrong_password_backs_off(broker_factory, tmp_path):
 
 # ---- TLS ----------------------------------------------------------------------------------
 
-@pytest.fixture(scope="module")
-def pki():
-    directory = tempfile.mkdtemp(prefix="edgeprop-pki-")
-    try:
-        yield make_test_pki(directory)
-    finally:
-        shutil.rmtree(directory, ignore_errors=True)
-
-
 def test_tls_context_verifies_host_names_and_refuses_old_tls(pki):
     context = tls_context(TlsSettings(pki.ca_file))
     assert context.check_hostname is True

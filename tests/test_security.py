@@ -9,10 +9,8 @@ from __future__ import annotations
 import os
 import pickle
 import re
-import shutil
 import socket
 import stat
-import tempfile
 import time
 import urllib.request
 from types import SimpleNamespace
@@ -20,7 +18,7 @@ from types import SimpleNamespace
 import numpy as np
 import pytest
 
-from broker_fixture import make_test_pki
+from broker_fixture import temporary_pki
 from daemon.checkpoints import CheckpointStore
 from daemon.config import load_config
 from daemon.runtime import ModelRuntime
@@ -37,23 +35,10 @@ WRONG = "not-the-Pump7-password"
 
 
 @pytest.fixture(scope="module")
-def pki():
-    """A CA with a server certificate for 127.0.0.1 and a client certificate (openssl)."""
-    directory = tempfile.mkdtemp(prefix="edgeprop-pki-")
-    try:
-        yield make_test_pki(directory)
-    finally:
-        shutil.rmtree(directory, ignore_errors=True)
-
-
-@pytest.fixture(scope="module")
 def other_pki():
     """A second, unrelated CA: what a gateway configured with the wrong CA file trusts."""
-    directory = tempfile.mkdtemp(prefix="edgeprop-pki-")
-    try:
-        yield make_test_pki(directory)
-    finally:
-        shutil.rmtree(directory, ignore_errors=True)
+    with temporary_pki() as files:
+        yield files
 
 
 def secret_file(directory, text: str, mode: int = 0o600) -> str:
