@@ -14,7 +14,7 @@ import numpy as np
 import pytest
 
 from daemon.config import load_config
-from daemon.demo import View, parse_broker, require, scenario_times, write_demo_config
+from daemon.demo import View, parse_broker, require, scenario_times, write_demo_config  # re-exported
 from daemon.errors import ConfigError, EdgepropError
 from daemon_proc import ROOT
 
