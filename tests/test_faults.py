@@ -7,6 +7,7 @@ count what it lost and keep learning.
 """
 from __future__ import annotations
 
+import contextlib
 import json
 import os
 import random
@@ -52,6 +53,23 @@ def bounded_broker():
         yield proc
 
 
+@contextlib.contextmanager
+def paced_traffic(daemon: Daemon, broker):
+    """Once the daemon is ready: a probe that survives broker restarts and 20 readings/s through it."""
+    daemon.wait_ready()
+    url = daemon.metrics_url()
+    probe = ReconnectingProbe(broker)
+    pub = None
+    try:
+        pub = PacedPublisher(probe, rate=20)
+        probe.wait_for(lambda: len(probe.predictions()) >= 5, 15, "first predictions")
+        yield url, probe
+    finally:
+        if pub is not None:
+            pub.stop()
+        probe.close()
+
+
 # ---- the broker dies and comes back ----------------------------------------------------------
 
 def test_broker_killed_and_restarted_ten_times_while_traffic_flows(broker, tmp_path):
@@ -61,40 +79,31 @@ def test_broker_killed_and_restarted_ten_times_while_traffic_flows(broker, tmp_p
     # the daemon retries at least that often; the README states this
     set_config_keys(cfg, "broker", reconnect_min_s=0.2, reconnect_max_s=2.0)
     daemon = Daemon(cfg)
-    probe = pub = None
     try:
-        daemon.wait_ready()
-        url = daemon.metrics_url()
-        probe = ReconnectingProbe(broker)
-        pub = PacedPublisher(probe, rate=20)
-        probe.wait_for(lambda: len(probe.predictions()) >= 5, 15, "first predictions")
-        began, resumed = time.monotonic(), []
-        for cycle in range(10):
-            broker.kill()                                    # SIGKILL: no goodbye to anyone
-            time.sleep(1.0)
+        with paced_traffic(daemon, broker) as (url, probe):
+            began, resumed = time.monotonic(), []
+            for cycle in range(10):
+                broker.kill()                                    # SIGKILL: no goodbye to anyone
+                time.sleep(1.0)
+                up(daemon)
+                broker.start()
+                back = time.monotonic()
+                deadline = back + 5.0
+                while probe.received_since(PRED, back) == 0:
+                    assert time.monotonic() < deadline, (
+                        f"restart {cycle + 1}: no prediction within 5 s of the broker coming back\n"
+                        + daemon.log()[-2000:])
+                    time.sleep(0.02)
+                resumed.append(time.monotonic() - back)
+                time.sleep(1.5)                                   # traffic flows; checkpoints are taken
+            elapsed = time.monotonic() - began
+            assert elapsed <= 120, f"10 restarts took {elapsed:.0f} s"
             up(daemon)
-            broker.start()
-            back = time.monotonic()
-            deadline = back + 5.0
-            while probe.received_since(PRED, back) == 0:
-                assert time.monotonic() < deadline, (
-                    f"restart {cycle + 1}: no prediction within 5 s of the broker coming back\n"
-                    + daemon.log()[-2000:])
-                time.sleep(0.02)
-            resumed.append(time.monotonic() - back)
-            time.sleep(1.5)                                   # traffic flows; checkpoints are taken
-        elapsed = time.monotonic() - began
-        assert elapsed <= 120, f"10 restarts took {elapsed:.0f} s"
-        up(daemon)
-        status = daemon.status()
-        assert status["broker_connected"] is True
-        assert counter(scrape(url), "edgeprop_broker_reconnects_total") >= 10
-        print(f"predictions resumed {min(resumed):.2f}-{max(resumed):.2f} s after each restart")
+            status = daemon.status()
+            assert status["broker_connected"] is True
+            assert counter(scrape(url), "edgeprop_broker_reconnects_total") >= 10
+            print(f"predictions resumed {min(resumed):.2f}-{max(resumed):.2f} s after each restart")
     finally:
-        if pub is not None:
-            pub.stop()
-        if probe is not None:
-            probe.close()
         code = daemon.stop()
     log = daemon.log()
     assert code == 0, log[-3000:]
@@ -337,44 +346,35 @@ def test_hundred_invalid_reloads_keep_the_last_good_config(broker, tmp_path):
         with pytest.raises(ConfigError):
             load_config(cfg + ".check")
     daemon = Daemon(cfg)
-    probe = pub = None
     try:
-        daemon.wait_ready()
-        url = daemon.metrics_url()
-        probe = ReconnectingProbe(broker)
-        pub = PacedPublisher(probe, rate=20)
-        probe.wait_for(lambda: len(probe.predictions()) >= 5, 15, "first predictions")
-        for i, data in enumerate(variants, start=1):
-            if data is None:
-                os.unlink(cfg)
-            else:
-                with open(cfg + ".tmp", "wb") as f:
-                    f.write(data)
-                os.replace(cfg + ".tmp", cfg)
+        with paced_traffic(daemon, broker) as (url, probe):
+            for i, data in enumerate(variants, start=1):
+                if data is None:
+                    os.unlink(cfg)
+                else:
+                    with open(cfg + ".tmp", "wb") as f:
+                        f.write(data)
+                    os.replace(cfg + ".tmp", cfg)
+                daemon.signal(signal.SIGHUP)
+                wait_until(lambda: daemon.log().count("event=reload_refused ") >= i, 5,
+                           f"reload {i} to be refused", every=0.01)
+            up(daemon)
+            lines = [l for l in daemon.log().splitlines() if "event=reload_refused " in l]
+            assert len(lines) == 100 and all("first=" in l and "problems=" in l for l in lines)
+            assert "event=reloaded" not in daemon.log()
+            # (the config file is invalid now, so the socket path is given, not read from it)
+            m1 = control(str(tmp_path / "ctl.sock"), {"cmd": "status"})["models"]["m1"]
+            assert m1["learning_rate"] == 0.02 and m1["configured_learning_rate"] == 0.02
+            assert counter(scrape(url), "edgeprop_config_reloads_total", result="invalid") == 100
+            since = time.monotonic()
+            probe.wait_for(lambda: probe.received_since(PRED, since) >= 10, 10, "predictions after the reloads")
+            # a valid file is still taken after all that
+            good["models"][0]["training"]["learning_rate"] = 0.01
+            with open(cfg, "w") as f:
+                yaml.safe_dump(good, f, sort_keys=False)
             daemon.signal(signal.SIGHUP)
-            wait_until(lambda: daemon.log().count("event=reload_refused ") >= i, 5,
-                       f"reload {i} to be refused", every=0.01)
-        up(daemon)
-        lines = [l for l in daemon.log().splitlines() if "event=reload_refused " in l]
-        assert len(lines) == 100 and all("first=" in l and "problems=" in l for l in lines)
-        assert "event=reloaded" not in daemon.log()
-        # (the config file is invalid now, so the socket path is given, not read from it)
-        m1 = control(str(tmp_path / "ctl.sock"), {"cmd": "status"})["models"]["m1"]
-        assert m1["learning_rate"] == 0.02 and m1["configured_learning_rate"] == 0.02
-        assert counter(scrape(url), "edgeprop_config_reloads_total", result="invalid") == 100
-        since = time.monotonic()
-        probe.wait_for(lambda: probe.received_since(PRED, since) >= 10, 10, "predictions after the reloads")
-        # a valid file is still taken after all that
-        good["models"][0]["training"]["learning_rate"] = 0.01
-        with open(cfg, "w") as f:
-            yaml.safe_dump(good, f, sort_keys=False)
-        daemon.signal(signal.SIGHUP)
-        daemon.wait_log("event=reloaded", 5)
-        assert daemon.status()["models"]["m1"]["learning_rate"] == 0.01
+            daemon.wait_log("event=reloaded", 5)
+            assert daemon.status()["models"]["m1"]["learning_rate"] == 0.01
     finally:
-        if pub is not None:
-            pub.stop()
-        if probe is not None:
-            probe.close()
         code = daemon.stop()
     assert code == 0, daemon.log()[-3000:]
