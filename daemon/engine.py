@@ -66,10 +66,11 @@ class Engine:
             if self.metrics is not None:      # taken from the queue like any other message
                 self.metrics.observe_message(time.perf_counter() - started)
             return
+        decoded: dict = {}      # models sharing a topic and field decode it once
         for route in routes:
             rt = self.models[route.model]
             try:
-                readings = decode(payload, route.source, arrival_t, self.settings.broker.max_payload_bytes)
+                readings = self._decode_once(decoded, payload, route.source, arrival_t)
                 _refuse_future(readings, arrival_t, rt.settings.align.max_ahead_s)
                 if route.role == TARGET_ROLE:
                     for reading in readings:
@@ -85,6 +86,19 @@ class Engine:
                 self._trip_guard(rt, exc.reason, str(exc))
         if self.metrics is not None:
             self.metrics.observe_message(time.perf_counter() - started)
+
+    def _decode_once(self, decoded: dict, payload: bytes, source, arrival_t: float) -> list:
+        """Decode ``payload`` for ``source``, reusing (or re-raising) an earlier result for it."""
+        hit = decoded.get(source)
+        if hit is None:
+            try:
+                hit = decode(payload, source, arrival_t, self.settings.broker.max_payload_bytes)
+            except PayloadError as exc:
+                hit = exc
+            decoded[source] = hit
+        if isinstance(hit, PayloadError):
+            raise hit
+        return hit
 
     def _on_target(self, rt: ModelRuntime, t: float, y: float) -> None:
         if rt.learner.binary and y not in (0.0, 1.0):
