@@ -233,6 +233,7 @@ SCHEMA = _Section(S.Settings, {
         "reconnect_min_s": _Float(0, 3600, lo_open=True),
         "reconnect_max_s": _Float(0, 86400, lo_open=True),
         "queue_size": _Int(1, 10_000_000),
+        "queue_bytes": _Int(65536, 2**31 - 1),
         "max_payload_bytes": _Int(1, 268_435_455),   # MQTT 3.1.1 section 2.2.3 maximum
     }, checks=(_broker,), refused={"password": INLINE_PASSWORD}),
     "state_dir": _Path(is_dir=True),

@@ -30,10 +30,6 @@ READY_WITHOUT_BROKER_S = 20.0   # report ready anyway, so a broker outage at boo
 STOP_DEADLINE_S = 4.0           # finish, save and disconnect within this after SIGTERM
 BATCH = 256                     # messages taken from the queue under one lock
 HOUSEKEEPING_S = 0.05           # timers, control requests, metrics between messages at most this often
-# Payload bytes the inbound queue may hold, whatever broker.queue_size says: with the default
-# 10,000 readings and 64 kB payloads the count alone would allow 640 MB. 16 MiB is sixteen
-# full queues of ~100-byte readings yet small beside an edge board's RAM (common practice, no source).
-INBOUND_MAX_BYTES = 16 * 1024 * 1024
 
 
 class Flags:
@@ -55,7 +51,7 @@ class Service:
         self.clock = clock
         self.env = dict(os.environ if env is None else env)
         self.flags = Flags()
-        self.inbound = InboundQueue(settings.broker.queue_size, INBOUND_MAX_BYTES)
+        self.inbound = InboundQueue(settings.broker.queue_size, settings.broker.queue_bytes)
         self.metrics = Metrics(node=settings.node, queue_capacity=settings.broker.queue_size)
         self.engine = Engine(settings, self._publish, log, self.metrics, clock,
                              stores=self._stores(settings))

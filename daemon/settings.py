@@ -29,6 +29,10 @@ class BrokerSettings:
     reconnect_min_s: float = 0.5
     reconnect_max_s: float = 30.0
     queue_size: int = 10000                  # bounded inbound queue, readings
+    # Payload bytes waiting in the queue: with 10,000 readings of 64 kB the count alone would
+    # allow 640 MB; 16 MiB is sixteen full queues of ~100-byte readings yet small beside an
+    # edge board's RAM (common practice, no source).
+    queue_bytes: int = 16 * 1024 * 1024
     max_payload_bytes: int = 65536
 
 

@@ -171,7 +171,7 @@ def test_flood_at_ten_times_capacity_is_bounded_counted_and_drains(bounded_broke
         assert achieved >= 0.8 * rate, f"publisher reached {achieved:.0f} of {rate:.0f} msg/s"
         assert scrapes >= 20
         # Bound: resident memory before the flood + 40 MiB. The inbound queue holds at most
-        # queue_size (10,000) readings and 16 MiB of payload; these ~90-byte readings with their
+        # queue_size (10,000) readings and queue_bytes (16 MiB) of payload; these ~90-byte readings with their
         # Python objects are ~3 MiB, the rest is headroom for paho's buffers and the allocator.
         assert rss_peak <= rss_before + 40, f"RSS {rss_before:.0f} -> {rss_peak:.0f} MiB"
         # The backlog drains: the queue empties and the broker's share stops arriving.
@@ -206,15 +206,18 @@ def test_flood_at_ten_times_capacity_is_bounded_counted_and_drains(bounded_broke
 def test_flood_of_large_payloads_stays_within_the_byte_budget(bounded_broker, tmp_path):
     """Regression: the queue was bounded by count only; 60 kB readings took 290 MiB and rising."""
     broker = bounded_broker
+    budget = 1024 * 1024                 # broker.queue_bytes, small so the flood must reach it
     cfg = write_config(tmp_path, broker, [model_config(warmup=20)])
+    set_config_keys(cfg, "broker", queue_bytes=budget)
     daemon = Daemon(cfg)
     try:
         daemon.wait_ready()
         rss_before = rss_mib(daemon.proc.pid)
-        # A SenML-sized pack the worker parses slower than paho reads it: the queue fills.
-        big = json.dumps({"value": 1.0, "pad": [0] * 21000})         # ~63 kB, under 64 KiB
-        assert len(big) < 65536
-        flood = flood_process(broker, [("site/p1/speed", big)], 5000, 8, str(tmp_path))
+        # ~8 kB readings the worker parses slower than paho reads them: paho takes eight per
+        # 64 KiB read, while each costs the worker ~0.2 ms of json.loads (one-element lists).
+        # The count bound (10,000 readings, 80 MB) is never reached; the byte budget is.
+        big = json.dumps({"value": 1.0, "pad": [[0]] * 2000}, separators=(",", ":"))
+        flood = flood_process(broker, [("site/p1/speed", big)], 20000, 8, str(tmp_path))
         rss_peak = rss_before
         while flood.poll() is None:
             rss_peak = max(rss_peak, rss_mib(daemon.proc.pid))
@@ -223,9 +226,10 @@ def test_flood_of_large_payloads_stays_within_the_byte_budget(bounded_broker, tm
         flood_result(flood, 10)
         status = daemon.status()
         assert status["queue_dropped"] > 0, "the byte budget was never reached; flood too small"
-        # 16 MiB of queued payload, plus up to twice that for copies and allocator slack
-        assert rss_peak <= rss_before + 48, f"RSS {rss_before:.0f} -> {rss_peak:.0f} MiB"
-        print(f"RSS {rss_before:.1f} -> peak {rss_peak:.1f} MiB, dropped {status['queue_dropped']}")
+        # the budget of queued payload, plus copies and allocator slack
+        assert rss_peak <= rss_before + 24, f"RSS {rss_before:.0f} -> {rss_peak:.0f} MiB"
+        print(f"RSS {rss_before:.1f} -> peak {rss_peak:.1f} MiB, dropped {status['queue_dropped']}, "
+              f"handled {status['messages']}")
     finally:
         code = daemon.stop()
     assert code == 0, daemon.log()[-3000:]
