@@ -9,15 +9,15 @@ refuses to let outbound messages pile up in memory when the broker or the link i
 from __future__ import annotations
 
 import os
+import random
 import socket
 import ssl
 import stat
 import sys
 import threading
 import time
-from typing import Callable
+from typing import Callable, Protocol
 
-import numpy as np
 import paho.mqtt.client as mqtt
 from paho.mqtt.enums import CallbackAPIVersion, MQTTErrorCode
 
@@ -25,6 +25,12 @@ from daemon.errors import ConfigError
 from daemon.settings import BrokerSettings, TlsSettings
 
 LogFn = Callable[..., None]
+
+
+class Jitter(Protocol):
+    """Where backoff delays come from: ``random.Random`` or a seeded one in tests."""
+
+    def uniform(self, a: float, b: float) -> float: ...
 
 # Readings are periodic and the next one replaces a lost one, so QoS 0 subscriptions: the
 # broker sends no PUBACK round trip per reading (QoS 1 roughly halves paho's receive rate,
@@ -93,6 +99,26 @@ def tls_context(tls: TlsSettings) -> ssl.SSLContext:
                 f"broker.tls.cert_file/key_file: cannot load client certificate {tls.cert_file!r} "
                 f"with key {tls.key_file or tls.cert_file!r}: {exc}"]) from exc
     return context
+
+
+def _check_protocol_and_user(settings: BrokerSettings) -> None:
+    if settings.protocol not in ("3.1.1", "5"):
+        raise ConfigError([f"broker.protocol: {settings.protocol!r} is not supported; use '3.1.1' or '5'"])
+    if settings.password_file and not settings.username:
+        raise ConfigError(["broker.password_file is set but broker.username is not; set both"])
+
+
+def check_link_settings(settings: BrokerSettings) -> None:
+    """Raise ConfigError for broker settings no connection could use (protocol, password, TLS files).
+
+    Run by the daemon before it starts the process that holds the connection, so a bad
+    password file or certificate stops ``edgeprop run`` at once with exit code 2.
+    """
+    _check_protocol_and_user(settings)
+    if settings.password_file:
+        read_password_file(settings.password_file)
+    if settings.tls is not None:
+        tls_context(settings.tls)
 
 
 def _settled(info: mqtt.MQTTMessageInfo) -> bool:
@@ -164,11 +190,9 @@ class BrokerLink:
     def __init__(self, settings: BrokerSettings, node: str, subscriptions: list[str],
                  on_message: Callable[[str, bytes, float], None],
                  clock: Callable[[], float] = time.time, log: LogFn | None = None,
-                 rng: np.random.Generator | None = None, max_pending: int = 1000) -> None:
-        if settings.protocol not in ("3.1.1", "5"):
-            raise ConfigError([f"broker.protocol: {settings.protocol!r} is not supported; use '3.1.1' or '5'"])
-        if settings.password_file and not settings.username:
-            raise ConfigError(["broker.password_file is set but broker.username is not; set both"])
+                 rng: Jitter | None = None, max_pending: int = 1000,
+                 on_state_change: Callable[[], None] | None = None) -> None:
+        _check_protocol_and_user(settings)
         if max_pending < 1:
             raise ValueError(f"max_pending must be >= 1, got {max_pending!r}")
         self.settings = settings
@@ -183,9 +207,10 @@ class BrokerLink:
         self.callback_errors = 0      # on_message raised (the message is lost, the link goes on)
         self.last_error: str | None = None
         self._on_message = on_message
+        self._on_state_change = on_state_change or (lambda: None)   # connected or lost, at once
         self._clock = clock
         self._log = log or _stderr_log
-        self._rng = rng if rng is not None else np.random.default_rng()
+        self._rng = rng if rng is not None else random.Random()
         self._lock = threading.Lock()
         self._pending: dict[int, mqtt.MQTTMessageInfo] = {}
         self._connected = threading.Event()
@@ -336,6 +361,7 @@ class BrokerLink:
         self._connected.set()
         self._subscribe_to_all()
         client.publish(self.status_topic, "online", qos=STATUS_QOS, retain=True)
+        self._on_state_change()
         self._log("info", "broker_connected", host=self.settings.host, port=self.settings.port,
                   protocol=self.settings.protocol, tls=self.settings.tls is not None,
                   client_id=self.client_id, reconnects=self.reconnects)
@@ -359,6 +385,8 @@ class BrokerLink:
         was_up = self._connected.is_set()
         self._connected.clear()
         self._ready.clear()
+        if was_up:
+            self._on_state_change()
         if self._stopping:
             self._log("info", "broker_disconnected", reason="stopping")
             return

@@ -124,7 +124,7 @@ def _print_table(settings: Settings, only: str | None, in_use: dict | None) -> N
 
 
 def _print_status(st: dict) -> None:
-    print(f"node {st['node']}  pid {st.get('pid')}  broker {'connected' if st.get('broker_connected') else 'DISCONNECTED'}"
+    print(f"node {st['node']}  pid {st.get('pid')} (broker link {st.get('link_pid')})  broker {'connected' if st.get('broker_connected') else 'DISCONNECTED'}"
           f"  messages {st['messages']}  queue {st.get('queue_depth')} (dropped {st.get('queue_dropped')})")
     if st.get("rejects"):
         print("rejected: " + ", ".join(f"{k}={v}" for k, v in sorted(st["rejects"].items())))

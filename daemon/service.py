@@ -2,9 +2,10 @@
 
 Threads and who owns what:
   main thread   - signals only: handlers set flags and wake the worker (gunicorn-style)
-  paho thread   - network I/O; only enqueues inbound messages
   worker thread - owns every model; handles messages, ticks, control requests, reloads
   control/metrics threads - socket servers; never touch model state
+and one child process (daemon.link_child) holds the broker connection: paho's network thread
+there only enqueues readings, and a forwarder passes them over a socket pair to the worker.
 """
 from __future__ import annotations
 
@@ -20,15 +21,14 @@ from .config import diff_settings, load_config
 from .control import ControlServer
 from .engine import Engine
 from .errors import CheckpointError, ConfigError, ControlError, EdgepropError
-from .inbound import Inbound, InboundQueue
+from .inbound import Inbound
+from .link_process import LinkProcess, LinkProcessLost
 from .logs import Log
 from .metrics import Metrics, serve
-from .mqtt_link import BrokerLink
 from .settings import Settings
 
 READY_WITHOUT_BROKER_S = 20.0   # report ready anyway, so a broker outage at boot is no restart loop
 STOP_DEADLINE_S = 4.0           # finish, save and disconnect within this after SIGTERM
-BATCH = 256                     # messages taken from the queue under one lock
 HOUSEKEEPING_S = 0.05           # timers, control requests, metrics between messages at most this often
 
 
@@ -51,11 +51,10 @@ class Service:
         self.clock = clock
         self.env = dict(os.environ if env is None else env)
         self.flags = Flags()
-        self.inbound = InboundQueue(settings.broker.queue_size, settings.broker.queue_bytes)
         self.metrics = Metrics(node=settings.node, queue_capacity=settings.broker.queue_size)
         self.engine = Engine(settings, self._publish, log, self.metrics, clock,
                              stores=self._stores(settings))
-        self.link: BrokerLink | None = None
+        self.link: LinkProcess | None = None
         self.control: ControlServer | None = None
         self.http = None
         self._ready = False
@@ -76,14 +75,14 @@ class Service:
     def run(self) -> int:
         """Serve until SIGTERM/SIGINT; returns the process exit code."""
         self.engine.restore_all()
-        self.control = ControlServer(self.settings.control_socket, wake=self.inbound.wake, log=self.log)
-        self.http = serve(self.settings.metrics, self.metrics.registry)
         topics = self.engine.routes.topics
-        self.link = BrokerLink(self.settings.broker, self.settings.node, topics,
-                               on_message=self._enqueue, clock=self.clock, log=self.log)
+        self.link = LinkProcess(self.settings.broker, self.settings.node, topics, log=self.log,
+                                log_level=self.settings.logging.level)
+        self.link.start()          # first: a refused password file or certificate ends it here
+        self.control = ControlServer(self.settings.control_socket, wake=self.link.wake, log=self.log)
+        self.http = serve(self.settings.metrics, self.metrics.registry)
         self._install_signals()
         worker = threading.Thread(target=self._worker, name="edgeprop-worker", daemon=True)
-        self.link.start()
         self.log("info", "started", node=self.settings.node, models=len(self.engine.models),
                  topics=len(topics), metrics=getattr(self.http, "url", None),
                  control=self.settings.control_socket)
@@ -95,18 +94,15 @@ class Service:
     def _install_signals(self) -> None:
         def on_stop(signum, frame):
             self.flags.stop = True
-            self.inbound.wake()
+            self.link.wake()
 
         def on_hup(signum, frame):
             self.flags.reload = True
-            self.inbound.wake()
+            self.link.wake()
 
         signal.signal(signal.SIGTERM, on_stop)
         signal.signal(signal.SIGINT, on_stop)
         signal.signal(signal.SIGHUP, on_hup)
-
-    def _enqueue(self, topic: str, payload: bytes, arrival_t: float) -> None:
-        self.inbound.put(Inbound(topic, payload, arrival_t))
 
     def _publish(self, topic: str, payload: bytes, qos: int, retain: bool) -> object:
         return self.link.publish(topic, payload, qos, retain) if self.link else False
@@ -116,7 +112,7 @@ class Service:
         try:
             last_housekeeping = 0.0
             while not self.flags.stop:
-                items = self.inbound.get_many(BATCH, timeout=0.2)
+                items = self.link.receive(timeout=0.2)
                 for item in items:
                     self._handle_one(item)
                     if self.flags.stop:
@@ -128,6 +124,10 @@ class Service:
                 if not items or now - last_housekeeping >= HOUSEKEEPING_S:
                     last_housekeeping = now
                     self._between_messages()
+        except LinkProcessLost as exc:
+            self.log("error", "link_process_lost", error=str(exc), action="saving and exiting; "
+                     "systemd restarts the daemon")
+            self.exit_code = 1
         except Exception as exc:  # the one catch-all: log it, still try to shut down cleanly
             self.log("error", "worker_failed", error=f"{type(exc).__name__}: {exc}")
             self.exit_code = 1
@@ -161,12 +161,13 @@ class Service:
                                                  else "broker not reachable yet; retrying"), self.env)
             self.log("info", "ready", broker_connected=self.link.connected)
         now = time.monotonic()
-        if self._watchdog_s and now - self._last_ping >= self._watchdog_s / 2:
+        # systemd arms the watchdog once start-up is complete (READY=1): no pings before that
+        if self._ready and self._watchdog_s and now - self._last_ping >= self._watchdog_s / 2:
             self._last_ping = now
             sdnotify.notify("WATCHDOG=1", self.env)
 
     def _update_transport_metrics(self) -> None:
-        self.metrics.transport(queue_depth=self.inbound.depth, queue_dropped=self.inbound.dropped,
+        self.metrics.transport(queue_depth=self.link.depth, queue_dropped=self.link.dropped,
                                connected=self.link.connected, reconnects=self.link.reconnects,
                                publish_dropped=self.link.publish_dropped)
 
@@ -185,6 +186,7 @@ class Service:
             refusals = self.engine.apply_settings(new)
             changes = diff_settings(before, self.engine.settings)     # what was applied
             self.log.set_level(self.engine.settings.logging.level)
+            self.link.set_log_level(self.engine.settings.logging.level)
             for line in changes:
                 self.log("info", "reload_change", change=line)
             for line in refusals:
@@ -213,8 +215,8 @@ class Service:
         cmd = req["cmd"]
         if cmd == "status":
             st = self.engine.status()
-            st.update(pid=os.getpid(), broker_connected=self.link.connected,
-                      queue_depth=self.inbound.depth, queue_dropped=self.inbound.dropped,
+            st.update(pid=os.getpid(), link_pid=self.link.pid, broker_connected=self.link.connected,
+                      queue_depth=self.link.depth, queue_dropped=self.link.dropped,
                       config=os.path.abspath(self.config_path))
             return st
         if cmd == "rollback":

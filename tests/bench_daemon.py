@@ -148,15 +148,20 @@ def _spawn(*args: object) -> subprocess.Popen:
                             stdout=subprocess.PIPE, text=True, env={**os.environ, "PYTHONPATH": ROOT})
 
 
-def _result(proc: subprocess.Popen, timeout: float = 180) -> dict:
-    """The child's JSON line; read as soon as it is printed, then the child is reaped."""
+def _result(proc: subprocess.Popen, timeout: float = 180, reap: bool = True) -> dict:
+    """The child's JSON line, read as soon as it is printed; then the child is reaped.
+
+    ``reap=False`` returns without waiting for the child to exit: paho's ``loop_stop`` in the
+    publisher takes up to a second, and a caller timing the daemon must not sleep through it.
+    """
     deadline = time.monotonic() + timeout
     while time.monotonic() < deadline:
         line = proc.stdout.readline()
         if not line:
             break
         if line.startswith("{"):
-            proc.wait(timeout=30)
+            if reap:
+                proc.wait(timeout=30)
             return json.loads(line)
     proc.kill()
     raise RuntimeError(f"child {proc.args[2:]} gave no result (exit {proc.poll()})")
@@ -247,11 +252,12 @@ def daemon_step(broker, dut: DaemonUnderTest, rate: float, seconds: float) -> di
         handled = st["messages"] - before["messages"]
         polls.append((now, handled))
         if res is None and select.select([pub.stdout], [], [], 0)[0]:
-            res = _result(pub)
+            res = _result(pub, reap=False)
             deadline = time.time() + 10
         if res is not None and (handled >= res["sent"] or now > deadline):
             break
         time.sleep(POLL_S)
+    pub.wait(timeout=30)
     offered = res["sent"] / max(res["last"] - res["first"], 1e-9)
     # lag at each poll: what the paced publisher had sent by then, minus what the daemon handled
     lags = [min(res["sent"], offered * (t - res["first"])) - h for t, h in polls if t > res["first"]]

@@ -2,6 +2,7 @@
 from __future__ import annotations
 
 import os
+import random
 import queue
 import shutil
 import socket
@@ -12,7 +13,6 @@ import threading
 import time
 import uuid
 
-import numpy as np
 import paho.mqtt.client as mqtt
 import pytest
 from paho.mqtt.enums import CallbackAPIVersion
@@ -82,7 +82,7 @@ def make_link(port: int, subscriptions: list[str], sink: InboundQueue | None = N
     sink = sink if sink is not None else InboundQueue(100)
     return BrokerLink(BrokerSettings(port=port, **settings), node, subscriptions,
                       lambda topic, payload, t: sink.put(Inbound(topic, payload, t)),
-                      log=log or Recorder(), rng=np.random.default_rng(7))
+                      log=log or Recorder(), rng=random.Random(7))
 
 
 def wait_until(predicate, timeout: float) -> bool:

@@ -1,0 +1,150 @@
+"""The broker connection's own process: reads the broker, forwards readings, sends predictions.
+
+Why a process and not a thread: paho's network thread and the learning worker shared one
+interpreter lock, and every numpy call of the worker handed that lock back and forth with
+paho's reads. With the connection here, each side runs on its own core, and the worker's
+process has no competitor for its lock (tests/bench_daemon.py, DEVELOPERS.md).
+
+Started by ``daemon.link_process.LinkProcess`` as ``python -m daemon.link_child FD``: FD is
+one end of a Unix socket pair, framed by ``multiprocessing.connection.Connection``.
+Everything that crosses it is built by edgeprop itself (payload bytes travel as opaque
+``bytes``), so pickling it is safe.
+
+  parent -> child   ("setup", BrokerSettings, node, topics, log_level, queue_size, queue_bytes)
+                    ("pub", topic, payload, qos, retain)
+                    ("level", log_level)
+                    ("stop", timeout_s)
+  child -> parent   ("hello", pid) | ("fatal", [problem, ...])
+                    ("batch", [(topic, payload, arrival_t), ...], state)
+                    ("state", state)        when idle, so counters and `connected` stay fresh
+                    ("stopped", state)      state: the fields of LinkState, as a plain tuple
+"""
+from __future__ import annotations
+
+import os
+import signal
+import sys
+import threading
+from multiprocessing.connection import Connection
+from typing import NamedTuple
+
+from .errors import ConfigError
+from .inbound import Inbound, InboundQueue
+from .logs import Log
+from .mqtt_link import BrokerLink
+
+FORWARD_BATCH = 512          # readings per message to the parent at most
+IDLE_STATE_S = 0.2           # with no readings, send the link's state this often
+
+
+class LinkState(NamedTuple):
+    """The connection's and the inbound queue's figures, as the parent reports them."""
+
+    connected: bool = False
+    reconnects: int = 0
+    publish_dropped: int = 0
+    queue_depth: int = 0
+    queue_dropped: int = 0
+
+
+class _Sender:
+    """Sends to the parent from two threads (forwarder and main) without interleaving frames."""
+
+    def __init__(self, conn: Connection) -> None:
+        self.conn = conn
+        self.lock = threading.Lock()
+
+    def __call__(self, message: tuple) -> bool:
+        with self.lock:
+            try:
+                self.conn.send(message)
+                return True
+            except (OSError, ValueError):   # the parent is gone; the main thread sees EOF next
+                return False
+
+
+def _state(link: BrokerLink, queue: InboundQueue) -> tuple:
+    # a plain tuple on the wire: this module runs as __main__ here, so a LinkState would be
+    # pickled under a name the parent cannot look up
+    return (link.connected, link.reconnects, link.publish_dropped, queue.depth, queue.dropped)
+
+
+def _forward(queue: InboundQueue, link: BrokerLink, send: _Sender, stopping: threading.Event) -> None:
+    """Move queued readings to the parent in batches; blocking here never stalls paho's thread."""
+    while not stopping.is_set():
+        items = queue.get_many(FORWARD_BATCH, timeout=IDLE_STATE_S)
+        if items:
+            ok = send(("batch", [(i.topic, i.payload, i.arrival_t) for i in items], _state(link, queue)))
+        else:
+            ok = send(("state", _state(link, queue)))
+        if not ok:
+            return
+
+
+def _serve(conn: Connection, link: BrokerLink, queue: InboundQueue, log: Log, send: _Sender) -> None:
+    """Carry out the parent's requests until it says stop or goes away."""
+    stopping = threading.Event()
+    forwarder = threading.Thread(target=_forward, args=(queue, link, send, stopping),
+                                 name="edgeprop-forward", daemon=True)
+    forwarder.start()
+    timeout = 2.0
+    while True:
+        try:
+            message = conn.recv()
+        except (EOFError, OSError):
+            log("warning", "link_parent_gone", action="disconnecting")
+            break
+        kind = message[0]
+        if kind == "pub":
+            link.publish(*message[1:])
+        elif kind == "level":
+            log.set_level(message[1])
+        elif kind == "stop":
+            timeout = float(message[1])
+            break
+    stopping.set()
+    queue.wake()
+    forwarder.join(timeout=1.0)
+    link.stop(timeout=timeout)
+    send(("stopped", _state(link, queue)))
+
+
+def run_child(conn: Connection) -> int:
+    """The child's whole life: set up the link from the parent's settings, serve, stop."""
+    # The parent decides when to stop: a SIGTERM sent to the whole service (systemd does that)
+    # or a Ctrl-C to the terminal's process group must not cut the connection before the
+    # parent has published its last predictions and "offline".
+    for signum in (signal.SIGTERM, signal.SIGINT, signal.SIGHUP):
+        signal.signal(signum, signal.SIG_IGN)
+    try:
+        _, settings, node, topics, level, queue_size, queue_bytes = conn.recv()
+    except (EOFError, OSError, ValueError):
+        return 1
+    log = Log(level)
+    queue = InboundQueue(queue_size, queue_bytes)
+    send = _Sender(conn)
+    try:
+        # a wake-up makes the forwarder report the new state now, not at its next idle round
+        link = BrokerLink(settings, node, topics, log=log, on_state_change=queue.wake,
+                          on_message=lambda topic, payload, t: queue.put(Inbound(topic, payload, t)))
+    except ConfigError as exc:
+        send(("fatal", list(exc.problems)))
+        return 2
+    link.start()
+    send(("hello", os.getpid()))
+    _serve(conn, link, queue, log, send)
+    conn.close()
+    return 0
+
+
+def main(argv: list[str] | None = None) -> int:
+    args = sys.argv[1:] if argv is None else argv
+    if len(args) != 1 or not args[0].isdigit():
+        print("usage: python -m daemon.link_child FD (started by edgeprop run, not by hand)",
+              file=sys.stderr)
+        return 2
+    return run_child(Connection(int(args[0])))
+
+
+if __name__ == "__main__":
+    sys.exit(main())

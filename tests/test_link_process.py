@@ -1,0 +1,108 @@
+"""The broker connection's own process, with a real mosquitto and real signals.
+
+The daemon is two processes: the worker (``edgeprop run``) and its child that holds the
+MQTT connection (daemon.link_child). These tests check the two live and die together the
+way an operator and systemd expect: a stray SIGTERM to the child does not cut the link, a
+dead child makes the daemon save and exit 1 (so systemd restarts it), and a dead parent
+takes its child and the broker connection with it, so the broker says "offline".
+"""
+from __future__ import annotations
+
+import os
+import signal
+import time
+
+import pytest
+
+from daemon_proc import Daemon, Probe, model_config, retained, wait_until, write_config
+
+pytestmark = pytest.mark.integration
+
+STATUS = "edgeprop/testnode/status"
+TOPIC = "edgeprop/testnode/m1"
+
+
+def _alive(pid: int) -> bool:
+    """True while ``pid`` runs (a zombie, dead but not yet reaped, counts as gone)."""
+    try:
+        with open(f"/proc/{pid}/stat") as f:
+            return f.read().rsplit(")", 1)[1].split()[0] != "Z"
+    except FileNotFoundError:
+        return False
+
+
+def _children(pid: int) -> list[int]:
+    kids: list[int] = []
+    for task in os.listdir(f"/proc/{pid}/task"):
+        with open(f"/proc/{pid}/task/{task}/children") as f:
+            kids += [int(k) for k in f.read().split()]
+    return kids
+
+
+def _feed(probe: Probe, n: int, start: int = 0) -> None:
+    """``n`` steps of speed, current and bearing temperature (arrival times)."""
+    items = []
+    for i in range(start, start + n):
+        speed = 1000 + 10 * (i % 40)
+        items += [("site/p1/speed", f'{{"value": {speed}}}'), ("site/p1/current", "12.5"),
+                  ("site/p1/bearing_temp", f'{{"value": {40 + 0.01 * speed}}}')]
+    probe.publish_many(items, qos=1)
+
+
+@pytest.fixture
+def running(tmp_path, broker):
+    config = write_config(tmp_path, broker, [model_config(warmup=5)])
+    daemon = Daemon(config)
+    probe = Probe(broker)
+    try:
+        daemon.wait_ready()
+        yield daemon, probe, config
+    finally:
+        probe.close()
+        daemon.kill()
+
+
+def test_status_names_the_link_process_and_it_is_our_child(running):
+    daemon, _, _ = running
+    link_pid = daemon.status()["link_pid"]
+    assert link_pid in _children(daemon.proc.pid)
+    with open(f"/proc/{link_pid}/cmdline", "rb") as f:
+        assert b"daemon.link_child" in f.read()
+
+
+def test_sigterm_to_the_child_alone_does_not_cut_the_link(running, broker):
+    daemon, probe, _ = running
+    link_pid = daemon.status()["link_pid"]
+    os.kill(link_pid, signal.SIGTERM)          # what systemd's control-group kill sends it too
+    os.kill(link_pid, signal.SIGINT)           # and a Ctrl-C to the terminal's process group
+    time.sleep(0.5)
+    assert _alive(link_pid)
+    _feed(probe, 30)
+    wait_until(lambda: len(probe.predictions(TOPIC)) >= 20, 15, "predictions after SIGTERM to the child")
+    assert retained(broker, STATUS) == b"online"
+    assert daemon.stop() == 0                  # the parent's SIGTERM still stops both
+    assert not _alive(link_pid)
+    assert retained(broker, STATUS) == b"offline"
+
+
+def test_a_dead_child_makes_the_daemon_save_and_exit_1(running, broker):
+    daemon, probe, _ = running
+    _feed(probe, 20)
+    wait_until(lambda: daemon.status()["models"]["m1"]["samples"] >= 20, 15, "20 samples learned")
+    os.kill(daemon.status()["link_pid"], signal.SIGKILL)
+    assert daemon.proc.wait(10) == 1
+    log = daemon.log()
+    assert "event=link_process_lost" in log
+    assert "reason=shutdown" in log            # the models were saved on the way out
+    # the connection died without DISCONNECT, so the broker published the last will
+    wait_until(lambda: retained(broker, STATUS) == b"offline", 10, "the will: offline")
+
+
+def test_a_killed_daemon_takes_its_link_process_with_it(running, broker):
+    daemon, _, _ = running
+    link_pid = daemon.status()["link_pid"]
+    assert retained(broker, STATUS) == b"online"
+    daemon.proc.kill()                         # SIGKILL: no handler runs in the parent
+    daemon.proc.wait(5)
+    wait_until(lambda: not _alive(link_pid), 10, "the link process to end after its parent")
+    wait_until(lambda: retained(broker, STATUS) == b"offline", 10, "status offline")
