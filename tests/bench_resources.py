@@ -10,8 +10,9 @@ batch 32, one SGD step per sample, window 2048, 512 readings of history per inpu
 Two ways to push the hour through, each in a fresh process per configuration:
   run     the real ``edgeprop run`` against mosquitto on loopback (metrics endpoint on). RSS
           from /proc after start, and after the hour of traffic (sent as fast as the daemon
-          keeps up with, none dropped); CPU from /proc/PID/stat over the traffic, so the MQTT
-          network thread and the metrics are included.
+          keeps up with, none dropped), summed over the daemon and its broker link process
+          (shared library pages counted twice: an upper bound); CPU from /proc/PID/stat of
+          both over the traffic, so the MQTT network thread and the metrics are included.
   replay  ``daemon.replay.replay`` on a capture of the same hour, in a process that first
           imports everything ``run`` imports; CPU from getrusage around the replay only.
 
@@ -121,20 +122,27 @@ def run_replay(cfg: str, capture: str) -> dict:
 # ---- the real daemon --------------------------------------------------------------------------
 
 def proc_cpu_s(pid: int) -> float:
-    """utime + stime of ``pid`` (all threads) in seconds, from /proc/PID/stat (proc(5))."""
-    with open(f"/proc/{pid}/stat") as f:
-        fields = f.read().rsplit(")", 1)[1].split()
-    return (int(fields[11]) + int(fields[12])) / os.sysconf("SC_CLK_TCK")
+    """utime + stime of ``pid`` (all threads) and its live children, in seconds (proc(5)).
+
+    The daemon's broker connection runs in a child process: its CPU is the daemon's too.
+    """
+    from daemon_proc import child_pids
+    total = 0.0
+    for p in (pid, *child_pids(pid)):
+        with open(f"/proc/{p}/stat") as f:
+            fields = f.read().rsplit(")", 1)[1].split()
+        total += (int(fields[11]) + int(fields[12])) / os.sysconf("SC_CLK_TCK")
+    return total
 
 
 def run_daemon(broker, cfg: str, hour: list, workdir: str) -> dict:
-    from daemon_proc import Daemon, flood_process, flood_result, rss_mib, wait_until
+    from daemon_proc import Daemon, daemon_rss_mib, flood_process, flood_result, wait_until
     daemon = Daemon(cfg)
     try:
         daemon.wait_ready(30)
         time.sleep(1.0)                                  # let start-up allocations settle
         pid = daemon.proc.pid
-        after_start = rss_mib(pid)
+        after_start = daemon_rss_mib(daemon)
         idle0 = proc_cpu_s(pid)
         time.sleep(3.0)                                  # idle: timers, keepalive, no traffic
         idle_per_s = (proc_cpu_s(pid) - idle0) / 3.0
@@ -149,7 +157,7 @@ def run_daemon(broker, cfg: str, hour: list, workdir: str) -> dict:
                    every=0.2)
         cpu, wall = proc_cpu_s(pid) - cpu0, time.monotonic() - wall0
         status = daemon.status()
-        after_hour = rss_mib(pid)
+        after_hour = daemon_rss_mib(daemon)
         paced = paced_cpu(broker, pid, hour, workdir,
                           lambda: daemon.status()["messages"] - status["messages"])
         return {"after_start": after_start, "after_hour": after_hour, "cpu": cpu, "wall": wall,

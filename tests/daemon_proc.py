@@ -423,6 +423,28 @@ def rss_mib(pid: int) -> float:
     raise AssertionError(f"no VmRSS for pid {pid}")
 
 
+def child_pids(pid: int) -> list[int]:
+    """The direct children of ``pid`` (for the daemon: its broker link process)."""
+    kids: list[int] = []
+    for task in os.listdir(f"/proc/{pid}/task"):
+        try:
+            with open(f"/proc/{pid}/task/{task}/children") as f:
+                kids += [int(k) for k in f.read().split()]
+        except FileNotFoundError:       # a thread that ended meanwhile (e.g. an HTTP handler)
+            pass
+    return kids
+
+
+def daemon_rss_mib(daemon: "Daemon") -> float:
+    """Resident memory of the daemon and its link process together, MiB.
+
+    The inbound queue lives in the link process, so a bound on the worker alone would prove
+    nothing. Summed VmRSS counts shared library pages twice: an upper bound.
+    """
+    pid = daemon.proc.pid
+    return rss_mib(pid) + sum(rss_mib(k) for k in child_pids(pid))
+
+
 class ReconnectingProbe(Probe):
     """A Probe that survives broker restarts (re-subscribes on every connect), with TLS/login.
 

@@ -23,7 +23,7 @@ from daemon.config import load_config
 from daemon.errors import ConfigError
 from daemon_proc import (
     Daemon, PacedPublisher, PipedDaemon, ReconnectingProbe, bearing_stream, checkpoint_ids,
-    control, edited_broker, flood_process, flood_result, model_config, offline_runtime, rss_mib,
+    control, edited_broker, flood_process, flood_result, model_config, offline_runtime, daemon_rss_mib,
     scrape, set_config_keys, wait_until, write_config,
 )
 from nets.store import read_state
@@ -154,7 +154,7 @@ def test_flood_at_ten_times_capacity_is_bounded_counted_and_drains(bounded_broke
         items = [(t, p) for t, p, _ in bearing_stream(3000)]
         capacity = _capacity(daemon, broker, tmp_path, items)
         assert capacity > 500, f"measured capacity {capacity:.0f} msg/s is implausibly low"
-        rss_before = rss_mib(daemon.proc.pid)
+        rss_before = daemon_rss_mib(daemon)
         rate, seconds = 10 * capacity, 30.0
         flood = flood_process(broker, items, rate, seconds, str(tmp_path))
         rss_peak, scrapes, began = rss_before, 0, time.monotonic()
@@ -163,7 +163,7 @@ def test_flood_at_ten_times_capacity_is_bounded_counted_and_drains(bounded_broke
             with urllib.request.urlopen(url, timeout=2) as resp:   # must answer within 2 s
                 assert resp.status == 200 and b"edgeprop_inbound_dropped_total" in resp.read()
             scrapes += 1
-            rss_peak = max(rss_peak, rss_mib(daemon.proc.pid))
+            rss_peak = max(rss_peak, daemon_rss_mib(daemon))
             up(daemon)
             time.sleep(max(0.0, 1.0 - (time.monotonic() - t)))
         sent = flood_result(flood, 15)
@@ -212,7 +212,7 @@ def test_flood_of_large_payloads_stays_within_the_byte_budget(bounded_broker, tm
     daemon = Daemon(cfg)
     try:
         daemon.wait_ready()
-        rss_before = rss_mib(daemon.proc.pid)
+        rss_before = daemon_rss_mib(daemon)
         # ~8 kB readings the worker parses slower than paho reads them: paho takes eight per
         # 64 KiB read, while each costs the worker ~0.2 ms of json.loads (one-element lists).
         # The count bound (10,000 readings, 80 MB) is never reached; the byte budget is.
@@ -220,7 +220,7 @@ def test_flood_of_large_payloads_stays_within_the_byte_budget(bounded_broker, tm
         flood = flood_process(broker, [("site/p1/speed", big)], 20000, 8, str(tmp_path))
         rss_peak = rss_before
         while flood.poll() is None:
-            rss_peak = max(rss_peak, rss_mib(daemon.proc.pid))
+            rss_peak = max(rss_peak, daemon_rss_mib(daemon))
             up(daemon)
             time.sleep(0.25)
         flood_result(flood, 10)

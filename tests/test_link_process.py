@@ -14,7 +14,7 @@ import time
 
 import pytest
 
-from daemon_proc import Daemon, Probe, model_config, retained, wait_until, write_config
+from daemon_proc import Daemon, Probe, child_pids, model_config, retained, wait_until, write_config
 
 pytestmark = pytest.mark.integration
 
@@ -29,14 +29,6 @@ def _alive(pid: int) -> bool:
             return f.read().rsplit(")", 1)[1].split()[0] != "Z"
     except FileNotFoundError:
         return False
-
-
-def _children(pid: int) -> list[int]:
-    kids: list[int] = []
-    for task in os.listdir(f"/proc/{pid}/task"):
-        with open(f"/proc/{pid}/task/{task}/children") as f:
-            kids += [int(k) for k in f.read().split()]
-    return kids
 
 
 def _feed(probe: Probe, n: int, start: int = 0) -> None:
@@ -65,7 +57,7 @@ def running(tmp_path, broker):
 def test_status_names_the_link_process_and_it_is_our_child(running):
     daemon, _, _ = running
     link_pid = daemon.status()["link_pid"]
-    assert link_pid in _children(daemon.proc.pid)
+    assert link_pid in child_pids(daemon.proc.pid)
     with open(f"/proc/{link_pid}/cmdline", "rb") as f:
         assert b"daemon.link_child" in f.read()
 
