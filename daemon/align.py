@@ -9,6 +9,7 @@ for the plant at that moment skips the sample instead of feeding a guess.
 from __future__ import annotations
 
 import math
+from bisect import bisect_left, bisect_right
 
 import numpy as np
 
@@ -20,9 +21,11 @@ from daemon.settings import AlignSettings, ModelSettings
 class InputHistory:
     """The newest ``capacity`` readings of one input, kept sorted by time.
 
-    Storage is a buffer twice the capacity; live readings are the slice
-    ``[lo, hi)``. Appends are O(1) amortised (the live slice slides back to
-    the front only when it hits the end), and lookups are one binary search.
+    Times and values are plain float lists whose live part is ``[lo:]``: a reading is
+    one list append (or an insert when it comes a little late) and a lookup is one
+    binary search, without numpy's per-call overhead on a single number. Readings
+    that fall out of the capacity are cut off in one go once as many again have
+    piled up, so appends stay O(1) amortised.
     """
 
     def __init__(self, capacity: int, late_tolerance_s: float) -> None:
@@ -30,91 +33,77 @@ class InputHistory:
             raise ValueError(f"history capacity must be >= 1, got {capacity}")
         self.capacity = int(capacity)
         self.late_tolerance_s = float(late_tolerance_s)
-        self._t = np.empty(2 * self.capacity, np.float64)
-        self._v = np.empty(2 * self.capacity, np.float64)
+        self._t: list[float] = []
+        self._v: list[float] = []
         self._lo = 0
-        self._hi = 0
 
     def __repr__(self) -> str:
         newest = f", newest t={self.newest_t:.3f}" if len(self) else ""
         return f"InputHistory({len(self)}/{self.capacity}{newest})"
 
     def __len__(self) -> int:
-        return self._hi - self._lo
+        return len(self._t) - self._lo
 
     @property
     def newest_t(self) -> float | None:
         """Time of the newest reading, or None when empty."""
-        return float(self._t[self._hi - 1]) if self._hi > self._lo else None
+        return self._t[-1] if len(self._t) > self._lo else None
 
     @property
     def oldest_t(self) -> float | None:
         """Time of the oldest reading kept, or None when empty."""
-        return float(self._t[self._lo]) if self._hi > self._lo else None
+        return self._t[self._lo] if len(self._t) > self._lo else None
 
     def add(self, t: float, value: float) -> None:
         """Insert a reading in time order; ``PayloadError('late')`` if beyond the tolerance."""
         if not (math.isfinite(t) and math.isfinite(value)):
             raise PayloadError("non_finite", f"reading t={t}, value={value}")
-        lo, hi = self._lo, self._hi
-        if hi == lo or t > self._t[hi - 1]:
-            self._make_room()
-            self._t[self._hi] = t
-            self._v[self._hi] = value
-            self._hi += 1
+        t, value = float(t), float(value)
+        times = self._t
+        if len(times) == self._lo or t > times[-1]:
+            times.append(t)
+            self._v.append(value)
             self._trim()
             return
-        newest = float(self._t[hi - 1])
+        newest = times[-1]
         if t < newest - self.late_tolerance_s:
             raise PayloadError("late", f"reading at t={t:.3f} is {newest - t:.3f} s older than "
                                f"the newest ({newest:.3f}); align.late_tolerance_s is "
                                f"{self.late_tolerance_s:g}")
-        i = lo + int(np.searchsorted(self._t[lo:hi], t, side="left"))
-        if self._t[i] == t:            # same timestamp: the newer message wins
+        i = bisect_left(times, t, self._lo)
+        if times[i] == t:              # same timestamp: the newer message wins
             self._v[i] = value
             return
-        self._make_room()
-        i += self._lo - lo
-        hi = self._hi
-        # Overlapping slice assignment is safe: numpy buffers overlapping copies.
-        self._t[i + 1:hi + 1] = self._t[i:hi]
-        self._v[i + 1:hi + 1] = self._v[i:hi]
-        self._t[i] = t
-        self._v[i] = value
-        self._hi = hi + 1
+        times.insert(i, t)
+        self._v.insert(i, value)
         self._trim()
 
     def as_of(self, t: float) -> tuple[float, float] | None:
         """(reading time, value) of the newest reading at or before ``t``, or None."""
-        lo, hi = self._lo, self._hi
-        j = lo + int(np.searchsorted(self._t[lo:hi], t, side="right")) - 1
-        if j < lo:
+        j = bisect_right(self._t, t, self._lo) - 1
+        if j < self._lo:
             return None
-        return float(self._t[j]), float(self._v[j])
+        return self._t[j], self._v[j]
 
     def arrays(self) -> tuple[np.ndarray, np.ndarray]:
         """Copies of the live (times, values), oldest first."""
-        return self._t[self._lo:self._hi].copy(), self._v[self._lo:self._hi].copy()
+        lo = self._lo
+        return np.array(self._t[lo:], np.float64), np.array(self._v[lo:], np.float64)
 
     def load(self, t: np.ndarray, v: np.ndarray) -> None:
         """Replace the contents with arrays already passed through ``check_arrays``."""
-        t, v = t[-self.capacity:], v[-self.capacity:]
-        n = t.shape[0]
-        self._t[:n] = t
-        self._v[:n] = v
-        self._lo, self._hi = 0, n
-
-    def _make_room(self) -> None:
-        """Slide the live slice to the front when the buffer end is reached."""
-        if self._hi == self._t.shape[0]:
-            n = self._hi - self._lo
-            self._t[:n] = self._t[self._lo:self._hi]
-            self._v[:n] = self._v[self._lo:self._hi]
-            self._lo, self._hi = 0, n
+        self._t = np.asarray(t, np.float64)[-self.capacity:].tolist()
+        self._v = np.asarray(v, np.float64)[-self.capacity:].tolist()
+        self._lo = 0
 
     def _trim(self) -> None:
-        if self._hi - self._lo > self.capacity:
-            self._lo = self._hi - self.capacity
+        n = len(self._t)
+        if n - self._lo > self.capacity:
+            self._lo = n - self.capacity
+            if self._lo >= self.capacity:
+                del self._t[:self._lo]
+                del self._v[:self._lo]
+                self._lo = 0
 
 
 def check_arrays(name: str, t: np.ndarray, v: np.ndarray) -> None:
@@ -165,18 +154,22 @@ class FeatureAssembler:
 
     def add(self, input_name: str, reading: Reading) -> None:
         """Record an input reading; ``PayloadError('late')`` if it is too far out of order."""
-        self._hist[self._check_name(input_name)].add(reading.t, reading.value)
+        hist = self._hist.get(input_name)
+        if hist is None:
+            self._check_name(input_name)
+        hist.add(reading.t, reading.value)
 
     def features_at(self, t: float) -> np.ndarray:
         """Feature vector for a target measured at ``t``; ``SampleSkipped`` if an input is stale."""
-        out = np.empty(self.n_features, np.float64)
-        for k, (name, lag, hist) in enumerate(self._plan):
+        values = []
+        max_age = self.max_age_s
+        for name, lag, hist in self._plan:
             at = t - lag
             hit = hist.as_of(at)
-            if hit is None or at - hit[0] > self.max_age_s:
+            if hit is None or at - hit[0] > max_age:
                 raise self._skip(name, lag, hist, hit, at)
-            out[k] = hit[1]
-        return out
+            values.append(hit[1])
+        return np.array(values, np.float64)
 
     def fresh_at(self, t: float) -> bool:
         """True when every feature at ``t`` has a reading within ``max_age_s``."""

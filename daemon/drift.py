@@ -176,18 +176,20 @@ class InputShift:
 
     def update(self, x: float) -> bool:
         """Add one raw value; True on the sample where the shift first exceeds the threshold."""
-        if self.ref_n < self.reference:
-            self.ref_n += 1
+        ref_n, buf, head, recent = self.ref_n, self.buf, self.head, self.recent
+        if ref_n < self.reference:
+            ref_n = self.ref_n = ref_n + 1
             d = x - self.ref_mean
-            self.ref_mean += d / self.ref_n
-            self.ref_m2 += d * (x - self.ref_mean)
-        self.total += x - self.buf[self.head]
-        self.buf[self.head] = x
-        self.head = (self.head + 1) % self.recent
-        self.count = min(self.count + 1, self.recent)
-        if self.head == 0:
-            self.total = _sum(self.buf)             # no rounding creep over millions of samples
-        if not self.ready:
+            mean = self.ref_mean = self.ref_mean + d / ref_n
+            self.ref_m2 += d * (x - mean)
+        self.total += x - buf[head]
+        buf[head] = x
+        head = self.head = (head + 1) % recent
+        if self.count < recent:                     # count never exceeds recent (see _fill)
+            self.count += 1
+        if head == 0:
+            self.total = _sum(buf)                  # no rounding creep over millions of samples
+        if ref_n < self.reference or self.count < recent:     # not ready
             return False
         # a constant reference (a setpoint) gets a tiny spread, so any real move is a shift
         # common practice, no source: a floor relative to the level

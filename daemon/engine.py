@@ -53,6 +53,7 @@ class Engine:
         self.drift_events: dict[str, int] = {}
         self.guard_trips: dict[str, int] = {}
         self.messages = 0
+        self._names_json: dict[str, str] = {}
 
     # -- one inbound message ---------------------------------------------------
     def handle(self, topic: str, payload: bytes, arrival_t: float) -> None:
@@ -66,7 +67,8 @@ class Engine:
             if self.metrics is not None:      # taken from the queue like any other message
                 self.metrics.observe_message(time.perf_counter() - started)
             return
-        decoded: dict = {}      # models sharing a topic and field decode it once
+        # models sharing a topic and field decode it once (None: a single route, nothing to share)
+        decoded: dict | None = {} if len(routes) > 1 else None
         for route in routes:
             rt = self.models[route.model]
             try:
@@ -87,8 +89,10 @@ class Engine:
         if self.metrics is not None:
             self.metrics.observe_message(time.perf_counter() - started)
 
-    def _decode_once(self, decoded: dict, payload: bytes, source, arrival_t: float) -> list:
+    def _decode_once(self, decoded: dict | None, payload: bytes, source, arrival_t: float) -> list:
         """Decode ``payload`` for ``source``, reusing (or re-raising) an earlier result for it."""
+        if decoded is None:
+            return decode(payload, source, arrival_t, self.settings.broker.max_payload_bytes)
         hit = decoded.get(source)
         if hit is None:
             try:
@@ -117,7 +121,8 @@ class Engine:
         if not rt.learner.binary:
             rt.interval.update(y, pred.value)
         rt.note_sample_time(self.clock())
-        event = rt.drift.update(result.loss, x[rt.lag0])
+        xl = x.tolist()
+        event = rt.drift.update(result.loss, [xl[i] for i in rt.lag0_cols])
         if event is not None:
             self._on_drift(rt, event)
         trip = rt.guard.observe(result.loss)
@@ -142,18 +147,23 @@ class Engine:
                 low, high = bounds
                 if y is not None:
                     outside = bool(y < low or y > high)
-        msg = {"model": rt.name, "t": t, "predicted": pred.value,
-               "measured": y, "residual": None if y is None else y - pred.value,
-               "low": low, "high": high, "outside": outside, "drift": bool(rt.drift.active),
-               "checkpoint": rt.checkpoint_id, "samples": rt.learner.samples}
+        values = (t, pred.value, y, None if y is None else y - pred.value, low, high, outside,
+                  bool(rt.drift.active), rt.checkpoint_id, rt.learner.samples)
         try:
-            body = json.dumps(msg, separators=(",", ":"), allow_nan=False).encode()
+            body = _message_json(self._name_json(rt.name), values).encode()
         except ValueError:
+            msg = dict(zip(("model", *_MESSAGE_KEYS), (rt.name, *values)))
             raise Diverged(f"refusing to publish a non-finite number: {msg}") from None
         p = rt.settings.publish
         self.publish(rt.publish_topic, body, p.qos, p.retain)
         if self.metrics is not None:
             self.metrics.observe_published(rt.name, pred.value, low, high)
+
+    def _name_json(self, name: str) -> str:
+        text = self._names_json.get(name)
+        if text is None:
+            text = self._names_json[name] = json.dumps(name)
+        return text
 
     def publish_model_info(self) -> None:
         """Retained description of each model beside its predictions, with the advisory notice."""
@@ -173,7 +183,11 @@ class Engine:
                 self._predict_only(rt, now)
         if now - self.last_checkpoint_t >= self.settings.checkpoints.every_s:
             self.last_checkpoint_t = now
-            self.checkpoint_all("timer")
+            # A model that learned nothing since its last save is not written again: an idle
+            # plant would otherwise wear the flash of a small box with identical files.
+            for rt in self.models.values():
+                if rt.learned_since_save():
+                    self.checkpoint_model(rt, "timer")
 
     def _predict_only(self, rt: ModelRuntime, now: float) -> None:
         if not rt.learner.warmed_up or not rt.assembler.fresh_at(now):
@@ -312,6 +326,41 @@ class Engine:
         """Hot-apply what can change live; return refusals (the rest is applied)."""
         from .reload import apply_to_engine
         return apply_to_engine(self, new)
+
+
+_MESSAGE_KEYS = ("t", "predicted", "measured", "residual", "low", "high", "outside", "drift",
+                 "checkpoint", "samples")
+_MESSAGE_HEADS = tuple(f',"{k}":' for k in _MESSAGE_KEYS)
+
+
+def _message_json(model_json: str, values: tuple) -> str:
+    """The published message as ``json.dumps(msg, separators=(",", ":"), allow_nan=False)``
+    writes it, keys in contract order; built directly, as json.dumps with options sets up a
+    new encoder for every call. ValueError on a non-finite number, as json.dumps raises."""
+    parts = ['{"model":', model_json]
+    for head, v in zip(_MESSAGE_HEADS, values):
+        parts.append(head)
+        # most values are finite floats (inf - inf and nan - nan are nan, not 0)
+        parts.append(float.__repr__(v) if type(v) is float and v - v == 0.0 else _json_value(v))
+    parts.append("}")
+    return "".join(parts)
+
+
+def _json_value(v: object) -> str:
+    """One value as json writes it: float and int by their own repr, nan and inf refused."""
+    if v is None:
+        return "null"
+    if v is True:
+        return "true"
+    if v is False:
+        return "false"
+    if isinstance(v, float):
+        if not math.isfinite(v):
+            raise ValueError(f"out of range float value {v!r}")
+        return float.__repr__(v)
+    if isinstance(v, int):
+        return int.__repr__(v)
+    return json.dumps(v, allow_nan=False)      # strings and anything else: json's own rules
 
 
 def _refuse_future(readings: list, arrival_t: float, max_ahead_s: float | None) -> None:

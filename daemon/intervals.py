@@ -22,6 +22,7 @@ paper's range, so it is clipped to [-gamma, 1 + gamma].
 from __future__ import annotations
 
 import math
+from bisect import bisect_left, insort
 from typing import Optional
 
 import numpy as np
@@ -39,6 +40,9 @@ class ConformalInterval:
         self.settings = settings
         self.buf = np.zeros(int(settings.window), np.float64)
         self.head = self.size = 0
+        # the stored residuals kept sorted beside the ring: the k-th smallest is then a
+        # lookup, not a partition of the whole window for every prediction
+        self._sorted: list[float] = []
         self.alpha_t = 1.0 - settings.coverage
         self.scored = self.inside = 0
         self._half: Optional[float] = None
@@ -65,13 +69,12 @@ class ConformalInterval:
         if self._stale:
             n = self.size
             rank = math.ceil((n + 1) * (1.0 - self.alpha_t) - 1e-9)   # 1-based; guard float fuzz
-            stored = self.buf[:n]
             if rank > n:
-                self._half = WIDE_MARGIN * float(stored.max())
+                self._half = WIDE_MARGIN * self._sorted[-1]
             elif rank < 1:
                 self._half = 0.0
             else:
-                self._half = float(np.partition(stored, rank - 1)[rank - 1])
+                self._half = self._sorted[rank - 1]
             self._stale = False
         return self._half
 
@@ -96,9 +99,13 @@ class ConformalInterval:
             gamma = self.settings.adapt_rate
             alpha = 1.0 - self.settings.coverage
             self.alpha_t = min(max(self.alpha_t + gamma * (alpha - outside), -gamma), 1.0 + gamma)
+        if self.size == self.buf.size:                  # the oldest residual leaves
+            del self._sorted[bisect_left(self._sorted, float(self.buf[self.head]))]
+        else:
+            self.size += 1
+        insort(self._sorted, float(r))
         self.buf[self.head] = r
         self.head = (self.head + 1) % self.buf.size
-        self.size = min(self.size + 1, self.buf.size)
         self._stale = True
         return outside
 
@@ -125,6 +132,7 @@ class ConformalInterval:
         self.buf[:values.size] = values
         self.size = values.size
         self.head = values.size % capacity
+        self._sorted = sorted(values.tolist())
         self._stale = True
 
     def state(self) -> dict[str, np.ndarray]:

@@ -88,6 +88,7 @@ class ModelLearner:
         self._boost_left = 0
         self._x1 = np.empty((1, self.n_features), self.net.dtype)
         self._y1 = np.empty((1, 1), self.net.dtype)
+        self._batch: tuple[np.ndarray, np.ndarray] | None = None    # standardised minibatch
 
     def __repr__(self) -> str:
         return f"ModelLearner({self.settings.name!r}, {self.net.architecture}, samples={self.samples})"
@@ -109,7 +110,8 @@ class ModelLearner:
     # -- predict and learn ----------------------------------------------------
     def predict(self, x_raw: np.ndarray) -> Prediction:
         """Predict one sample from raw input features."""
-        self._x1[0] = self.x_scaler.transform(x_raw, self.training.input_clip)
+        # one sample: plain floats beat numpy's per-call overhead, with the same arithmetic
+        self._x1[0] = self.x_scaler.transform_one(x_raw.tolist(), self.training.input_clip)
         z = float(self.net.forward(self._x1)[0, 0])
         if not math.isfinite(z):
             raise Diverged(f"non-finite network output {z!r}")
@@ -118,20 +120,30 @@ class ModelLearner:
                            f"target units, or logit)", "output_range")
         if self.binary:
             return Prediction(float(sigmoid(np.asarray(z))), z)
-        return Prediction(float(self.y_scaler.inverse(np.asarray([z]))[0]), z)
+        y = self.y_scaler
+        return Prediction(z * float(y.std[0]) + float(y.mean[0]), z)
 
     def sample_loss(self, pred: Prediction, y: float) -> float:
         """Loss of one prediction, in standardised target units (or on the logit)."""
-        self._y1[0, 0] = y if self.binary else (y - self.y_scaler.mean[0]) / self.y_scaler.std[0]
+        y_std = y if self.binary else (y - float(self.y_scaler.mean[0])) / float(self.y_scaler.std[0])
+        name = self.loss_fn.name
+        if self.net.dtype == np.float64 and name != "logistic":
+            # the float64 network's own arithmetic on one value, without six array calls
+            r = pred.z - y_std
+            if name == "squared":
+                return r * r
+            a, d = abs(r), self.loss_fn.delta
+            return 0.5 * a * a if a <= d else d * (a - 0.5 * d)
+        self._y1[0, 0] = y_std
         self._x1[0, 0] = pred.z
         return float(self.loss_fn.per_sample(self._x1[:, :1], self._y1)[0])
 
     def learn(self, x_raw: np.ndarray, y: float, pred: Prediction | None) -> LearnResult:
         """Add (x, y) to the window and take the configured SGD steps."""
         loss = self.sample_loss(pred, y) if pred is not None else float("nan")
-        self.x_scaler.update(x_raw)
+        self.x_scaler.update_one(x_raw.tolist())
         if not self.binary:
-            self.y_scaler.update(np.asarray([y]))
+            self.y_scaler.update_one((y,))
         self.window.add(x_raw, y)
         self.counters.samples += 1
         train_losses, norm, steps = 0.0, float("nan"), 0
@@ -148,11 +160,23 @@ class ModelLearner:
     def _step(self) -> tuple[float, float]:
         tr = self.training
         xb, yb = self.window.sample(tr.batch_size, self.rng, tr.sampling)
-        xs = self.x_scaler.transform(xb, tr.input_clip).astype(self.net.dtype, copy=False)
-        ys = yb if self.binary else (yb - self.y_scaler.mean) / self.y_scaler.std
+        xs_buf, ys_buf = self._batch_buffers(xb.shape[0])
+        xs = self.x_scaler.transform(xb, tr.input_clip, out=xs_buf).astype(self.net.dtype, copy=False)
+        if self.binary:
+            ys = yb
+        else:
+            ys = np.subtract(yb, self.y_scaler.mean, out=ys_buf)
+            np.divide(ys, self.y_scaler.std, out=ys)
         ys = ys.astype(self.net.dtype, copy=False)
         self.counters.steps += 1
         return train_step(self.net, self.opt, xs, ys, self.loss_fn, tr.weight_decay, tr.clip_norm)
+
+    def _batch_buffers(self, batch: int) -> tuple[np.ndarray, np.ndarray]:
+        """Float64 scratch for one standardised minibatch, kept while the batch size holds."""
+        buf = self._batch
+        if buf is None or buf[0].shape[0] != batch:
+            buf = self._batch = (np.empty((batch, self.n_features)), np.empty((batch, 1)))
+        return buf
 
     def weights_finite(self) -> bool:
         """True while every parameter is a finite number."""

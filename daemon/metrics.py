@@ -3,7 +3,10 @@
 Why it looks like this: the worker handles up to ~10k readings/s, so every label lookup is done
 once, when a model is registered, and the hot path only touches pre-bound children; slow-moving
 figures (weight norm, loss levels, drift scores, windowed error statistics) are refreshed every
-``refresh_every`` samples. Labels carry config names (model, input) and our own short codes
+``refresh_every`` samples. The per-message figures (messages, processing time, samples, steps,
+published predictions, the latest values) are plain Python numbers on the worker side, read into
+the scrape when it is collected: a prometheus-client call takes a lock and costs about a
+microsecond, and the worker made ~20 of them per sample. Labels carry config names (model, input) and our own short codes
 (reason, cause, result), never topics or reading values. Each ``Metrics`` builds its own
 ``CollectorRegistry`` so tests and replay never share state with a running daemon.
 
@@ -38,11 +41,16 @@ from __future__ import annotations
 import math
 import platform
 import re
+import threading
 import time
-from typing import Any, Callable, Iterable, Optional
+from bisect import bisect_left
+from typing import Any, Callable, Iterable, Iterator, Optional
 
 import numpy as np
-from prometheus_client import CollectorRegistry, Counter, Gauge, Histogram, Info
+import prometheus_client.metrics as _client_metrics
+from prometheus_client import CollectorRegistry, Counter, Gauge, Info
+from prometheus_client.metrics_core import CounterMetricFamily, Metric
+from prometheus_client.utils import floatToGoString
 
 from daemon import __version__
 from daemon.guard import REASONS as GUARD_REASONS
@@ -102,12 +110,10 @@ class Metrics:
         def g(name: str, doc: str) -> Gauge:
             return Gauge(PREFIX + name, doc, registry=r)
 
-        self._received = c("messages_received", "Messages the worker took from the queue.")
+        self._messages = _MessageFigures()
+        r.register(self._messages)
         self._rejected = _codes(c("messages_rejected", "Messages dropped as unusable, by reason.",
                                   "reason"))
-        self._processing = Histogram(PREFIX + "message_processing_seconds",
-                                     "Worker time per message, decode to metrics.",
-                                     buckets=PROCESSING_BUCKETS, registry=r)
         self._queue = g("inbound_queue_depth", "Messages waiting for the worker.")
         g("inbound_queue_capacity", "Size of the inbound queue.").set(queue_capacity)
         self._connected = g("broker_connected", "1 while the MQTT session is up.")
@@ -145,8 +151,7 @@ class Metrics:
     # -- process-wide ------------------------------------------------------------------------
     def observe_message(self, seconds: float) -> None:
         """Count one message the worker handled and the time it took."""
-        self._received.inc()
-        self._processing.observe(seconds)
+        self._messages.observe(seconds)
 
     def rejected(self, reason: str, model: Optional[str] = None) -> None:
         """Count an unusable message by reason (per reason only: unknown topics have no model)."""
@@ -229,16 +234,20 @@ class _ModelFamilies:
     """The metric families labelled by model, shared by every ``ModelMetrics``."""
 
     def __init__(self, r: CollectorRegistry) -> None:
-        def g(name: str, doc: str, *labels: str) -> Gauge:
-            return Gauge(PREFIX + name, doc, ["model", *labels], registry=r)
+        self.pending: list[Callable[[], None]] = []      # each model's bring_in
+        self._lock = threading.Lock()
 
-        def c(name: str, doc: str, *labels: str) -> Counter:
-            return Counter(PREFIX + name, doc, ["model", *labels], registry=r)
+        def g(name: str, doc: str, *labels: str, cls: type = Gauge) -> Gauge:
+            return self._hook(cls(PREFIX + name, doc, ["model", *labels], registry=r))
 
-        self.samples = c("samples", "Target readings learned from (warm-up included).")
-        self.steps = c("training_steps", "SGD steps taken.")
+        def c(name: str, doc: str, *labels: str, cls: type = Counter) -> Counter:
+            return self._hook(cls(PREFIX + name, doc, ["model", *labels], registry=r))
+
+        self.samples = c("samples", "Target readings learned from (warm-up included).",
+                         cls=_PendingCounter)
+        self.steps = c("training_steps", "SGD steps taken.", cls=_PendingCounter)
         self.skipped = c("samples_skipped", "Target readings that formed no sample.", "reason")
-        self.published = c("predictions_published", "Predictions published.")
+        self.published = c("predictions_published", "Predictions published.", cls=_PendingCounter)
         self.loss = g("prequential_loss", "Test-then-train loss, moving average.", "window")
         self.rmse = g("rmse", "Root mean squared residual over recent samples, target units.")
         self.log_loss = g("log_loss", "Mean logistic loss over recent samples (binary models).")
@@ -248,14 +257,14 @@ class _ModelFamilies:
                             "percentile")
         self.coverage = g("interval_coverage_ratio", "Share of scored readings inside the band.")
         self.coverage_goal = g("interval_coverage_target_ratio", "Coverage the band aims for.")
-        self.lr = g("learning_rate", "Learning rate in force.")
+        self.lr = g("learning_rate", "Learning rate in force.", cls=_PendingGauge)
         self.wnorm = g("weight_norm", "Euclidean norm of all network parameters.")
-        self.gnorm = g("gradient_norm", "Euclidean norm of the last gradient.")
+        self.gnorm = g("gradient_norm", "Euclidean norm of the last gradient.", cls=_PendingGauge)
         self.loss_drift = g("loss_drift_score", "Loss drift statistic over its alarm level.")
         self.loss_events = c("loss_drift_events", "Drift alarms on the loss stream.")
         self.shift = g("input_shift_score", "Input mean shift, in reference spreads.", "input")
         self.shift_events = c("input_shift_events", "Shift alarms on an input.", "input")
-        self.drift = g("drift_active", "1 while the published drift flag is up.")
+        self.drift = g("drift_active", "1 while the published drift flag is up.", cls=_PendingGauge)
         self.ckpt_time = g("checkpoint_last_success_timestamp_seconds",
                            "Unix time of the last checkpoint written by this process; 0: none.")
         self.ckpt_fail = c("checkpoint_failures", "Checkpoint writes that failed.")
@@ -263,11 +272,46 @@ class _ModelFamilies:
         self.ckpt_corrupt = c("checkpoint_skipped_corrupt", "Checkpoints skipped as corrupt.")
         self.rollbacks = c("rollbacks", "Returns to an earlier checkpoint, by cause.", "cause")
         self.guard = c("guard_trips", "Guard trips (non-finite or runaway loss).", "reason")
-        self.last = {k: g("last_" + k, f"Latest {k.replace('_', ' ')}, target units.")
+        self.last = {k: g("last_" + k, f"Latest {k.replace('_', ' ')}, target units.",
+                          cls=_PendingGauge)
                      for k in ("measured", "predicted", "residual", "interval_low",
                                "interval_high")}
         self.info = Info(PREFIX + "model", "Checkpoint in service and network shape.",
                          ["model"], registry=r)
+
+    def _hook(self, family: Any) -> Any:
+        if isinstance(family, _Pending):
+            family.bring_in = self.bring_in
+        return family
+
+    def bring_in(self) -> None:
+        """Copy every model's pending figures into the metric children (any thread)."""
+        with self._lock:
+            for bring_in in self.pending:
+                bring_in()
+
+
+class _Pending:
+    """A metric family the worker feeds through plain numbers, brought in before each read.
+
+    Collecting the family (a scrape, ``get_sample_value``, a ``name[]``-restricted scrape)
+    first copies the pending figures in, so a reader never sees stale values.
+    """
+
+    def bring_in(self) -> None:
+        """Replaced by ``_ModelFamilies.bring_in`` on the registered family."""
+
+    def collect(self) -> Any:
+        self.bring_in()
+        return super().collect()       # type: ignore[misc]
+
+
+class _PendingCounter(_Pending, Counter):
+    pass
+
+
+class _PendingGauge(_Pending, Gauge):
+    pass
 
 
 class ModelMetrics:
@@ -310,6 +354,25 @@ class ModelMetrics:
         self._info, self._arch = f.info.labels(*b), architecture
         self._set_info("none")
         self._stats = _WindowStats(task == "binary", window, refresh_every)
+        # Worker side of the per-sample figures: running totals and latest values, copied
+        # into the children by bring_in (under the families' lock) when a family is read.
+        # The worker only overwrites these slots, so a concurrent read needs no lock.
+        self._totals = [0, 0, 0]                     # samples, steps, published
+        self._total_children = (self._samples, self._steps, self._published)
+        self._brought = [0, 0, 0]
+        self._latest_children = (self._last["predicted"], self._last["interval_low"],
+                                 self._last["interval_high"], self._last["measured"],
+                                 self._last["residual"], self._lr, self._gnorm, self._drift)
+        self._latest = [math.nan] * 7 + [0.0]        # what the children were set to above
+        f.pending.append(self._bring_in)
+
+    def _bring_in(self) -> None:
+        for i, (child, total) in enumerate(zip(self._total_children, list(self._totals))):
+            if total != self._brought[i]:
+                child.inc(total - self._brought[i])
+                self._brought[i] = total
+        for child, latest in zip(self._latest_children, list(self._latest)):
+            child.set(latest)
 
     def __repr__(self) -> str:
         return f"ModelMetrics({self.name!r}, task={self.task!r})"
@@ -320,17 +383,19 @@ class ModelMetrics:
     def published(self, predicted: Optional[float], low: Optional[float],
                   high: Optional[float]) -> None:
         """Count one published prediction; record it and its band when given."""
-        self._published.inc()
+        self._totals[2] += 1
+        latest = self._latest
         if predicted is not None:
-            self._last["predicted"].set(predicted)
+            latest[_PREDICTED] = predicted
         if low is not None and high is not None:
-            self._last["interval_low"].set(low)
-            self._last["interval_high"].set(high)
+            latest[_LOW] = low
+            latest[_HIGH] = high
 
     def outcome(self, measured: float, predicted: float) -> bool:
         """Record a reading scored against its prediction; True when slow gauges are due."""
-        self._last["measured"].set(measured)
-        self._last["residual"].set(measured - predicted)
+        latest = self._latest
+        latest[_MEASURED] = measured
+        latest[_RESIDUAL] = measured - predicted
         if self._stats.add(measured, predicted):
             for child, value in zip(self._windowed, self._stats.summary()):
                 child.set(value)
@@ -339,11 +404,12 @@ class ModelMetrics:
 
     def learned(self, steps: int, learning_rate: float, gradient_norm: float) -> None:
         """Count one sample learned from, its SGD steps (none in warm-up) and the rate in force."""
-        self._samples.inc()
-        self._lr.set(learning_rate)
+        totals, latest = self._totals, self._latest
+        totals[0] += 1
+        latest[_LR] = learning_rate
         if steps:
-            self._steps.inc(steps)
-            self._gnorm.set(gradient_norm)
+            totals[1] += steps
+            latest[_GNORM] = gradient_norm
 
     def levels(self, *, weight_norm: Optional[float] = None, coverage: Optional[float] = None,
                loss_short: Optional[float] = None, loss_long: Optional[float] = None,
@@ -353,10 +419,12 @@ class ModelMetrics:
         """Set the slow-moving figures that are given; leave the others as they are."""
         for child, value in ((self._wnorm, weight_norm), (self._coverage, coverage),
                              (self._loss[0], loss_short), (self._loss[1], loss_long),
-                             (self._loss_drift, loss_drift), (self._lr, learning_rate),
+                             (self._loss_drift, loss_drift),
                              (self._coverage_goal, coverage_target)):
             if value is not None:
                 child.set(value)
+        if learning_rate is not None:
+            self._latest[_LR] = learning_rate        # the per-sample path keeps it too
         for name, score in (input_shift or {}).items():
             self._input(self._shift, name).set(score)
 
@@ -369,7 +437,7 @@ class ModelMetrics:
 
     def drift_active(self, active: bool) -> None:
         """Record whether the published drift flag is up."""
-        self._drift.set(1 if active else 0)
+        self._latest[_DRIFT] = 1 if active else 0
 
     def drift_event(self, source: str) -> None:
         """Count one drift alarm: "loss" for the error stream, else the input's name."""
@@ -411,6 +479,54 @@ class ModelMetrics:
             raise ValueError(f"rollback cause {cause!r}; allowed: {', '.join(ROLLBACK_CAUSES)}")
         child.inc()
         self._set_info(checkpoint_id)
+
+
+# slots of ModelMetrics._latest, in the order of its _latest_children
+_PREDICTED, _LOW, _HIGH, _MEASURED, _RESIDUAL, _LR, _GNORM, _DRIFT = range(8)
+
+
+class _MessageFigures:
+    """Messages the worker handled and their processing-time histogram, as a collector.
+
+    The worker adds to plain counts (one per bucket, not cumulative) and a sum; a scrape
+    reads a copy of them. Exports what a prometheus-client ``Counter`` and ``Histogram``
+    would: ``messages_received_total`` and ``message_processing_seconds_{bucket,count,sum}``,
+    each with its ``_created`` sample.
+    """
+
+    RECEIVED = PREFIX + "messages_received"
+    PROCESSING = PREFIX + "message_processing_seconds"
+
+    def __init__(self) -> None:
+        self.counts = [0] * (len(PROCESSING_BUCKETS) + 1)     # the last one is +Inf
+        self.sum = 0.0
+        self.created = time.time()
+        self._le = [floatToGoString(b) for b in (*PROCESSING_BUCKETS, math.inf)]
+
+    def observe(self, seconds: float) -> None:
+        """Count one message; a time equal to a bucket's bound falls in that bucket."""
+        self.counts[bisect_left(PROCESSING_BUCKETS, seconds)] += 1
+        self.sum += seconds
+
+    def describe(self) -> list[Metric]:
+        return [CounterMetricFamily(self.RECEIVED, "Messages the worker took from the queue."),
+                Metric(self.PROCESSING, "Worker time per message, decode to metrics.", "histogram")]
+
+    def collect(self) -> Iterator[Metric]:
+        counts, total_seconds = list(self.counts), self.sum
+        created = self.created if getattr(_client_metrics, "_use_created", True) else None
+        received, histogram = self.describe()
+        received.add_metric([], float(sum(counts)), created=created)
+        yield received
+        cumulative = 0
+        for le, n in zip(self._le, counts):
+            cumulative += n
+            histogram.add_sample(self.PROCESSING + "_bucket", {"le": le}, float(cumulative))
+        histogram.add_sample(self.PROCESSING + "_count", {}, float(cumulative))
+        histogram.add_sample(self.PROCESSING + "_sum", {}, total_seconds)
+        if created is not None:
+            histogram.add_sample(self.PROCESSING + "_created", {}, created)
+        yield histogram
 
 
 class _WindowStats:

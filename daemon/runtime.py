@@ -43,8 +43,10 @@ class ModelRuntime:
         self.guard = DivergenceGuard(settings.guard)
         self.checkpoint_id: str | None = None
         self.good: dict[str, np.ndarray] | None = None     # last checkpoint's arrays
+        self.saved_samples: int | None = None   # learner.samples when last saved or loaded
         self.last_tick: float | None = None
         self.lag0 = self._lag0_columns(settings)
+        self.lag0_cols: list[int] = self.lag0.tolist()     # the same, for plain-list indexing
         self.last_loss = float("nan")
         self.seen_at = np.zeros(TIME_RING)   # worker clock when each recent scored sample was handled
         self.seen_n = 0
@@ -108,6 +110,7 @@ class ModelRuntime:
         self.assembler, self.drift = parts["align"], parts["drift"]
         self.interval, self.guard = parts["interval"], parts["guard"]
         self.good = dict(arrays)
+        self.saved_samples = self.learner.samples
         self._forget_sample_times()       # the restored detectors count from the checkpoint
 
     def meta(self, reason: str) -> dict:
@@ -129,10 +132,15 @@ class ModelRuntime:
             raise CheckpointError(f"model {self.name!r} holds non-finite numbers in "
                                   f"{', '.join(bad[:3])}; not saved")
         self.good = arrays
+        self.saved_samples = self.learner.samples
         if self.store is None:
             return None
         self.checkpoint_id = self.store.save(arrays, self.meta(reason))
         return self.checkpoint_id
+
+    def learned_since_save(self) -> bool:
+        """True when the model learned from a reading since its last save or load."""
+        return self.saved_samples != self.learner.samples
 
     def restore_newest(self) -> str | None:
         """Load the newest checkpoint that fits; None when there is none."""

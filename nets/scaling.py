@@ -6,6 +6,9 @@ that has not varied yet (zero variance) is scaled by 1, not by 1/0.
 """
 from __future__ import annotations
 
+import math
+from typing import Sequence
+
 import numpy as np
 
 MIN_VARIANCE = 1e-12   # below this a channel counts as constant (common practice, no source)
@@ -28,16 +31,40 @@ class RunningScaler:
         """Add one sample (shape (channels,)) or a batch (shape (n, channels))."""
         x = np.asarray(x, np.float64)
         if x.ndim == 1:
-            self.count += 1
-            d = x - self.mean
-            self.mean += d / self.count
-            self.m2 += d * (x - self.mean)
-        else:
-            n = x.shape[0]
-            if n == 0:
-                return
-            self._merge(n, x.mean(axis=0), ((x - x.mean(axis=0)) ** 2).sum(axis=0))
+            self.update_one(x.tolist())
+            return
+        n = x.shape[0]
+        if n == 0:
+            return
+        self._merge(n, x.mean(axis=0), ((x - x.mean(axis=0)) ** 2).sum(axis=0))
         self._refresh_std()
+
+    def update_one(self, values: Sequence[float]) -> None:
+        """Add one sample given as plain floats, one per channel.
+
+        The per-message path: at a few channels numpy's per-call overhead is most of
+        the cost, so the step runs on Python floats. It is the same IEEE-754 double
+        operations in the same order as the array form (float / int converts the
+        count exactly, and sqrt is correctly rounded in both), so the statistics
+        are bit-identical to updating with arrays.
+        """
+        mean, m2 = self.mean.tolist(), self.m2.tolist()
+        if len(values) != len(mean):
+            raise ValueError(f"sample has {len(values)} channels, expected {len(mean)}")
+        n = self.count = self.count + 1
+        for i, x in enumerate(values):
+            old = mean[i]
+            d = x - old
+            new = old + d / n
+            mean[i] = new
+            m2[i] += d * (x - new)
+        self.mean[:] = mean
+        self.m2[:] = m2
+        if n > 1:
+            # as _refresh_std: a variance that is not above the floor (nan too) scales by 1
+            self.std[:] = [math.sqrt(v) if v > MIN_VARIANCE else 1.0 for v in [s / n for s in m2]]
+        else:
+            self.std[:] = 1.0
 
     def merge(self, other: "RunningScaler") -> None:
         """Fold in another scaler's statistics as if its samples had come here too."""
@@ -65,12 +92,27 @@ class RunningScaler:
         """Population variance per channel (zero before two samples)."""
         return self.m2 / self.count if self.count > 1 else np.zeros_like(self.m2)
 
-    def transform(self, x: np.ndarray, clip: float | None = None) -> np.ndarray:
-        """Standardise ``x``; with ``clip``, bound the result to +-clip."""
-        z = (np.asarray(x, np.float64) - self.mean) / self.std
+    def transform(self, x: np.ndarray, clip: float | None = None,
+                  out: np.ndarray | None = None) -> np.ndarray:
+        """Standardise ``x``; with ``clip``, bound the result to +-clip.
+
+        ``out`` (float64, the shape of ``x``) takes the result without allocating;
+        the clip is done as maximum then minimum, which is what ``np.clip`` computes
+        (nan stays nan) with two plain ufunc calls instead of its Python wrapper.
+        """
+        if out is None:
+            out = np.empty(np.shape(x), np.float64)
+        np.subtract(x, self.mean, out=out)
+        np.divide(out, self.std, out=out)
         if clip is not None:
-            np.clip(z, -clip, clip, out=z)
-        return z.astype(self.dtype, copy=False)
+            np.maximum(out, -clip, out=out)
+            np.minimum(out, clip, out=out)
+        return out.astype(self.dtype, copy=False)
+
+    def transform_one(self, values: Sequence[float], clip: float) -> list[float]:
+        """``transform`` of one sample given as plain floats (the per-message path)."""
+        return [min(max((x - m) / s, -clip), clip)
+                for x, m, s in zip(values, self.mean.tolist(), self.std.tolist())]
 
     def inverse(self, z: np.ndarray) -> np.ndarray:
         """Undo ``transform`` (used on the regression output)."""

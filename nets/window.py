@@ -78,9 +78,10 @@ class Window:
         else:
             raise ValueError(f"unknown sampling {mode!r}; choose one of {list(SAMPLING)}")
         np.subtract(self.head - 1, age, out=idx)
-        np.mod(idx, self.capacity, out=idx)
-        np.take(self.x, idx, axis=0, out=bx)
-        np.take(self.y, idx, axis=0, out=by)
+        # rows are (head - 1 - age) mod capacity: take's "wrap" mode does the modulo (and,
+        # unlike the default mode, writes into the batch buffers without a hidden copy)
+        self.x.take(idx, 0, bx, "wrap")
+        self.y.take(idx, 0, by, "wrap")
         return bx, by
 
     def _batch_buffers(self, batch: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:

@@ -402,3 +402,26 @@ def test_drift_restore_without_a_checkpoint_before_the_change_says_so(tmp_path) 
     assert p.events("rolled_back") == []
     ((_, skipped),) = p.events("drift_restore_skipped")
     assert skipped["reason"] == "no checkpoint from before the change"
+
+
+# -- the checkpoint timer --------------------------------------------------------------------
+
+def test_timer_saves_a_model_only_after_it_learned_something(tmp_path) -> None:
+    p = Plant(tmp_path, store=True, warmup=5)
+    every = p.settings.checkpoints.every_s
+    p.feed(10)
+    p.now += every
+    p.engine.tick(p.now)
+    assert [f["samples"] for _, f in p.events("checkpoint_saved")] == [10]
+    for _ in range(3):                         # readings, but no target: nothing learned
+        p.now += every
+        p.engine.handle("site/p1/speed", b'{"value": 1000}', p.now)
+        p.engine.tick(p.now)
+    assert len(p.events("checkpoint_saved")) == 1
+    p.feed(1)
+    p.now += every
+    p.engine.tick(p.now)
+    assert [f["samples"] for _, f in p.events("checkpoint_saved")] == [10, 11]
+    assert [f["reason"] for _, f in p.events("checkpoint_saved")] == ["timer", "timer"]
+    p.engine.checkpoint_all("shutdown")        # on stop (and on request) it always saves
+    assert len(p.events("checkpoint_saved")) == 3

@@ -60,8 +60,9 @@ def offline_settings(tmp_path):
 
 
 class RecorderThread:
-    def __init__(self, settings, out: str) -> None:
+    def __init__(self, settings, out: str, count: int | None = None) -> None:
         self.started, self.stop, self.result = threading.Event(), threading.Event(), []
+        self.count = count
 
         def log(level, event, **fields):
             if event == "record_started":
@@ -69,7 +70,7 @@ class RecorderThread:
 
         def target():
             try:
-                self.result.append(record(settings, out, None, None, log, self.stop))
+                self.result.append(record(settings, out, None, count, log, self.stop))
             except Exception as e:      # handed to the test thread
                 self.result.append(e)
             self.started.set()
@@ -77,6 +78,11 @@ class RecorderThread:
         self.thread.start()
 
     def finish(self) -> int:
+        """Stop and return the lines written; with a ``count``, first let it reach that count.
+
+        The recorder is a subscriber of its own and may lag the daemon it runs beside.
+        """
+        self.thread.join(20 if self.count is not None else 0)
         self.stop.set()
         self.thread.join(10)
         assert not self.thread.is_alive() and isinstance(self.result[0], int), self.result
@@ -103,7 +109,7 @@ def test_live_run_replays_to_the_same_bytes(broker, tmp_path):
     try:
         daemon.wait_ready()
         probe = Probe(broker, "edgeprop/testnode/m1")
-        rec = RecorderThread(load_config(config), capture)
+        rec = RecorderThread(load_config(config), capture, count=3 * n + 2)
         assert rec.started.wait(10) and not rec.result, rec.result
         # Sync: once the daemon has counted this garbage payload, it is subscribed. The
         # recorder captures it too, so replay must reject it the same way.
