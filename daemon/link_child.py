@@ -11,7 +11,7 @@ Everything that crosses it is built by edgeprop itself (payload bytes travel as 
 ``bytes``), so pickling it is safe.
 
   parent -> child   ("setup", BrokerSettings, node, topics, log_level, queue_size, queue_bytes)
-                    ("pub", topic, payload, qos, retain)
+                    ("pubs", [(topic, payload, qos, retain), ...])
                     ("level", log_level)
                     ("stop", timeout_s)
   child -> parent   ("hello", pid) | ("fatal", [problem, ...])
@@ -95,8 +95,9 @@ def _serve(conn: Connection, link: BrokerLink, queue: InboundQueue, log: Log, se
             log("warning", "link_parent_gone", action="disconnecting")
             break
         kind = message[0]
-        if kind == "pub":
-            link.publish(*message[1:])
+        if kind == "pubs":
+            for topic, payload, qos, retain in message[1]:
+                link.publish(topic, payload, qos, retain)
         elif kind == "level":
             log.set_level(message[1])
         elif kind == "stop":

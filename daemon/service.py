@@ -117,6 +117,7 @@ class Service:
                     self._handle_one(item)
                     if self.flags.stop:
                         break
+                self.link.flush()          # this batch's predictions, in one write
                 now = time.monotonic()
                 # A wake-up with nothing to read is a signal or a control request: act at once.
                 # Otherwise housekeeping every HOUSEKEEPING_S is plenty, and at one message per
@@ -151,6 +152,7 @@ class Service:
             self._reload()
         self._update_transport_metrics()
         self._notify_ready_and_ping()
+        self.link.flush()                  # predict-only ticks, model info, control replies' effects
 
     def _notify_ready_and_ping(self) -> None:
         if not self._ready and (self.link.connected or
