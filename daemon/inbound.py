@@ -78,6 +78,11 @@ class InboundQueue:
             self.bytes -= sum(len(item.payload) for item in items)
             return items
 
+    def wait(self, timeout: float) -> bool:
+        """Wait until an item is queued, taking none; False on timeout or ``wake()``."""
+        with self._cond:
+            return self._wait_locked(timeout)
+
     def wake(self) -> None:
         """Make a waiting (or the next) ``get``/``get_many`` return at once, e.g. on a signal."""
         with self._cond:

@@ -29,6 +29,7 @@ from .settings import BrokerSettings
 
 START_TIMEOUT_S = 30.0       # a small ARM box can take seconds to import paho in the child
 OUTBOX_MAX = 64              # publishes queued before a flush is forced
+PROMPT_BATCH = 4             # batches of readings up to this size publish each prediction at once
 
 
 class LinkProcessLost(EdgepropError):
@@ -54,6 +55,7 @@ class LinkProcess:
         os.set_blocking(self._wake_w, False)
         self._stopped = False
         self._outbox: list[tuple] = []
+        self._batch_size = 0         # readings in the batch the worker is handling
 
     def __repr__(self) -> str:
         pid = self._proc.pid if self._proc else None
@@ -140,11 +142,13 @@ class LinkProcess:
     def publish(self, topic: str, payload: bytes | str, qos: int = 0, retain: bool = False) -> bool:
         """Queue one message for the child; ``flush`` hands the queued ones over in one write.
 
-        One write per batch of readings instead of one per prediction: each write wakes the
-        child, and under load those wake-ups cost the worker a fifth of its time.
+        Under load, one write per batch of readings instead of one per prediction: each write
+        wakes the child, and those wake-ups cost the worker a fifth of its time.
         """
         self._outbox.append((topic, payload, qos, retain))
-        if len(self._outbox) >= OUTBOX_MAX:
+        # A reading that came alone is no load: its prediction leaves at once, not after the
+        # learning step that follows it.
+        if self._batch_size <= PROMPT_BATCH or len(self._outbox) >= OUTBOX_MAX:
             self.flush()
         return True
 
@@ -176,7 +180,9 @@ class LinkProcess:
         message = self._recv_or_lost()
         self.state = LinkState(*message[-1])
         if message[0] == "batch":
+            self._batch_size = len(message[1])
             return [Inbound(topic, payload, t) for topic, payload, t in message[1]]
+        self._batch_size = 0
         return []
 
     def wake(self) -> None:

@@ -10,13 +10,18 @@ from __future__ import annotations
 
 import os
 import signal
+import socket
+import threading
 import time
+from multiprocessing.connection import Connection
+from types import SimpleNamespace
 
 import pytest
 
+from daemon.inbound import InboundQueue
+from daemon.link_child import Forwarder
 from daemon_proc import Daemon, Probe, child_pids, model_config, retained, wait_until, write_config
 
-pytestmark = pytest.mark.integration
 
 STATUS = "edgeprop/testnode/status"
 TOPIC = "edgeprop/testnode/m1"
@@ -54,6 +59,7 @@ def running(tmp_path, broker):
         daemon.kill()
 
 
+@pytest.mark.integration
 def test_status_names_the_link_process_and_it_is_our_child(running):
     daemon, _, _ = running
     link_pid = daemon.status()["link_pid"]
@@ -62,6 +68,7 @@ def test_status_names_the_link_process_and_it_is_our_child(running):
         assert b"daemon.link_child" in f.read()
 
 
+@pytest.mark.integration
 def test_sigterm_to_the_child_alone_does_not_cut_the_link(running, broker):
     daemon, probe, _ = running
     link_pid = daemon.status()["link_pid"]
@@ -77,6 +84,7 @@ def test_sigterm_to_the_child_alone_does_not_cut_the_link(running, broker):
     assert retained(broker, STATUS) == b"offline"
 
 
+@pytest.mark.integration
 def test_a_dead_child_makes_the_daemon_save_and_exit_1(running, broker):
     daemon, probe, _ = running
     _feed(probe, 20)
@@ -90,6 +98,7 @@ def test_a_dead_child_makes_the_daemon_save_and_exit_1(running, broker):
     wait_until(lambda: retained(broker, STATUS) == b"offline", 10, "the will: offline")
 
 
+@pytest.mark.integration
 def test_a_killed_daemon_takes_its_link_process_with_it(running, broker):
     daemon, _, _ = running
     link_pid = daemon.status()["link_pid"]
@@ -98,3 +107,73 @@ def test_a_killed_daemon_takes_its_link_process_with_it(running, broker):
     daemon.proc.wait(5)
     wait_until(lambda: not _alive(link_pid), 10, "the link process to end after its parent")
     wait_until(lambda: retained(broker, STATUS) == b"offline", 10, "status offline")
+
+
+# ---- the forwarder inside the link process, in-process with a real socket pair ------------------
+
+def _forwarder(capacity: int):
+    """A Forwarder on one end of a socket pair, its thread running; the other end for the test."""
+    ours, theirs = socket.socketpair()
+    queue = InboundQueue(capacity)
+    forward = Forwarder(Connection(theirs.detach()), queue)
+    forward.link = SimpleNamespace(connected=True, reconnects=0, publish_dropped=0)
+    stopping = threading.Event()
+    thread = threading.Thread(target=forward.run, args=(stopping,), daemon=True)
+    thread.start()
+    return forward, queue, Connection(ours.detach()), stopping, thread
+
+
+def _readings(conn: Connection, n: int, timeout: float, sizes: list | None = None) -> list[tuple]:
+    """Readings from the forwarder until ``n`` came or ``timeout`` s passed (state reports skipped)."""
+    got: list[tuple] = []
+    deadline = time.monotonic() + timeout
+    while len(got) < n and conn.poll(max(0.0, deadline - time.monotonic())):
+        message = conn.recv()
+        if message[0] == "batch":
+            got += message[1]
+            if sizes is not None:
+                sizes.append(len(message[1]))
+    return got
+
+
+def test_forwarded_readings_keep_their_order_whichever_way_they_go():
+    # The reader is slow at first, so early readings queue; later ones find the queue empty
+    # and go straight from the "network thread": the two paths must interleave in order.
+    forward, queue, parent, stopping, thread = _forwarder(capacity=100_000)
+    n = 20_000
+
+    def network_thread():
+        for i in range(n):
+            forward.on_message("site/p1/speed", str(i).encode(), float(i))
+            if i % 2000 == 0:
+                time.sleep(0.01)          # quiet spells: the queue drains, direct sends resume
+    producer = threading.Thread(target=network_thread)
+    producer.start()
+    time.sleep(0.05)
+    sizes: list[int] = []
+    got = _readings(parent, n, 30, sizes)
+    producer.join(10)
+    stopping.set()
+    thread.join(5)
+    assert [int(p) for _t, p, _a in got] == list(range(n))
+    assert queue.dropped == 0
+    assert 1 in sizes and max(sizes) > 1          # both paths were taken
+
+
+def test_the_network_thread_never_waits_for_a_parent_that_does_not_read():
+    forward, queue, parent, stopping, thread = _forwarder(capacity=1000)
+    payload = b"x" * 1000                 # 50 MB in all: far beyond the socket pair's buffers
+    producer = threading.Thread(target=lambda: [forward.on_message("t", payload, 0.0)
+                                                 for _ in range(50_000)])
+    producer.start()
+    producer.join(30)
+    assert not producer.is_alive(), "on_message blocked on a full socket"
+    dropped = queue.dropped
+    assert dropped > 0 and queue.depth == 1000        # the queue overflowed and stayed bounded
+    # every reading not counted as dropped still reaches a parent that reads again
+    got = _readings(parent, 50_000 - dropped, 60)
+    assert len(got) == 50_000 - dropped
+    stopping.set()
+    queue.wake()
+    thread.join(5)
+    assert not thread.is_alive()
