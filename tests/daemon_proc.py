@@ -435,6 +435,20 @@ def child_pids(pid: int) -> list[int]:
     return kids
 
 
+def daemon_pss_mib(daemon: "Daemon") -> float:
+    """Proportional set size of the daemon and its link process together, MiB (proc(5)).
+
+    Pages the two share (the interpreter, libraries) are split between them instead of
+    counted twice, as the kernel's memory cgroup (systemd's MemoryMax) charges them once.
+    """
+    total = 0.0
+    pid = daemon.proc.pid
+    for p in (pid, *child_pids(pid)):
+        with open(f"/proc/{p}/smaps_rollup") as f:
+            total += next(int(line.split()[1]) for line in f if line.startswith("Pss:")) / 1024.0
+    return total
+
+
 def daemon_rss_mib(daemon: "Daemon") -> float:
     """Resident memory of the daemon and its link process together, MiB.
 
