@@ -43,17 +43,13 @@ import platform
 import re
 import threading
 import time
-from bisect import bisect_left
-from typing import Any, Callable, Iterable, Iterator, Optional
+from typing import Any, Callable, Iterable, Optional
 
-import numpy as np
-import prometheus_client.metrics as _client_metrics
 from prometheus_client import CollectorRegistry, Counter, Gauge, Info
-from prometheus_client.metrics_core import CounterMetricFamily, Metric
-from prometheus_client.utils import floatToGoString
 
 from daemon import __version__
 from daemon.guard import REASONS as GUARD_REASONS
+from daemon.metric_figures import MessageFigures, Pending, PendingCounter, PendingGauge, WindowStats
 
 PREFIX = "edgeprop_"
 # Per-message processing time runs from ~20 us (a rejected reading) to tens of ms (a sample
@@ -110,7 +106,7 @@ class Metrics:
         def g(name: str, doc: str) -> Gauge:
             return Gauge(PREFIX + name, doc, registry=r)
 
-        self._messages = _MessageFigures()
+        self._messages = MessageFigures(PREFIX, PROCESSING_BUCKETS)
         r.register(self._messages)
         self._rejected = _codes(c("messages_rejected", "Messages dropped as unusable, by reason.",
                                   "reason"))
@@ -244,10 +240,10 @@ class _ModelFamilies:
             return self._hook(cls(PREFIX + name, doc, ["model", *labels], registry=r))
 
         self.samples = c("samples", "Target readings learned from (warm-up included).",
-                         cls=_PendingCounter)
-        self.steps = c("training_steps", "SGD steps taken.", cls=_PendingCounter)
+                         cls=PendingCounter)
+        self.steps = c("training_steps", "SGD steps taken.", cls=PendingCounter)
         self.skipped = c("samples_skipped", "Target readings that formed no sample.", "reason")
-        self.published = c("predictions_published", "Predictions published.", cls=_PendingCounter)
+        self.published = c("predictions_published", "Predictions published.", cls=PendingCounter)
         self.loss = g("prequential_loss", "Test-then-train loss, moving average.", "window")
         self.rmse = g("rmse", "Root mean squared residual over recent samples, target units.")
         self.log_loss = g("log_loss", "Mean logistic loss over recent samples (binary models).")
@@ -257,14 +253,14 @@ class _ModelFamilies:
                             "percentile")
         self.coverage = g("interval_coverage_ratio", "Share of scored readings inside the band.")
         self.coverage_goal = g("interval_coverage_target_ratio", "Coverage the band aims for.")
-        self.lr = g("learning_rate", "Learning rate in force.", cls=_PendingGauge)
+        self.lr = g("learning_rate", "Learning rate in force.", cls=PendingGauge)
         self.wnorm = g("weight_norm", "Euclidean norm of all network parameters.")
-        self.gnorm = g("gradient_norm", "Euclidean norm of the last gradient.", cls=_PendingGauge)
+        self.gnorm = g("gradient_norm", "Euclidean norm of the last gradient.", cls=PendingGauge)
         self.loss_drift = g("loss_drift_score", "Loss drift statistic over its alarm level.")
         self.loss_events = c("loss_drift_events", "Drift alarms on the loss stream.")
         self.shift = g("input_shift_score", "Input mean shift, in reference spreads.", "input")
         self.shift_events = c("input_shift_events", "Shift alarms on an input.", "input")
-        self.drift = g("drift_active", "1 while the published drift flag is up.", cls=_PendingGauge)
+        self.drift = g("drift_active", "1 while the published drift flag is up.", cls=PendingGauge)
         self.ckpt_time = g("checkpoint_last_success_timestamp_seconds",
                            "Unix time of the last checkpoint written by this process; 0: none.")
         self.ckpt_fail = c("checkpoint_failures", "Checkpoint writes that failed.")
@@ -273,14 +269,14 @@ class _ModelFamilies:
         self.rollbacks = c("rollbacks", "Returns to an earlier checkpoint, by cause.", "cause")
         self.guard = c("guard_trips", "Guard trips (non-finite or runaway loss).", "reason")
         self.last = {k: g("last_" + k, f"Latest {k.replace('_', ' ')}, target units.",
-                          cls=_PendingGauge)
+                          cls=PendingGauge)
                      for k in ("measured", "predicted", "residual", "interval_low",
                                "interval_high")}
         self.info = Info(PREFIX + "model", "Checkpoint in service and network shape.",
                          ["model"], registry=r)
 
     def _hook(self, family: Any) -> Any:
-        if isinstance(family, _Pending):
+        if isinstance(family, Pending):
             family.bring_in = self.bring_in
         return family
 
@@ -289,29 +285,6 @@ class _ModelFamilies:
         with self._lock:
             for bring_in in self.pending:
                 bring_in()
-
-
-class _Pending:
-    """A metric family the worker feeds through plain numbers, brought in before each read.
-
-    Collecting the family (a scrape, ``get_sample_value``, a ``name[]``-restricted scrape)
-    first copies the pending figures in, so a reader never sees stale values.
-    """
-
-    def bring_in(self) -> None:
-        """Replaced by ``_ModelFamilies.bring_in`` on the registered family."""
-
-    def collect(self) -> Any:
-        self.bring_in()
-        return super().collect()       # type: ignore[misc]
-
-
-class _PendingCounter(_Pending, Counter):
-    pass
-
-
-class _PendingGauge(_Pending, Gauge):
-    pass
 
 
 class ModelMetrics:
@@ -353,7 +326,7 @@ class ModelMetrics:
             child.set(math.nan)              # unknown yet: a gap on the chart, not a false zero
         self._info, self._arch = f.info.labels(*b), architecture
         self._set_info("none")
-        self._stats = _WindowStats(task == "binary", window, refresh_every)
+        self._stats = WindowStats(task == "binary", window, refresh_every, RESIDUAL_PERCENTILES)
         # Worker side of the per-sample figures: running totals and latest values, copied
         # into the children by bring_in (under the families' lock) when a family is read.
         # The worker only overwrites these slots, so a concurrent read needs no lock.
@@ -483,90 +456,6 @@ class ModelMetrics:
 
 # slots of ModelMetrics._latest, in the order of its _latest_children
 _PREDICTED, _LOW, _HIGH, _MEASURED, _RESIDUAL, _LR, _GNORM, _DRIFT = range(8)
-
-
-class _MessageFigures:
-    """Messages the worker handled and their processing-time histogram, as a collector.
-
-    The worker adds to plain counts (one per bucket, not cumulative) and a sum; a scrape
-    reads a copy of them. Exports what a prometheus-client ``Counter`` and ``Histogram``
-    would: ``messages_received_total`` and ``message_processing_seconds_{bucket,count,sum}``,
-    each with its ``_created`` sample.
-    """
-
-    RECEIVED = PREFIX + "messages_received"
-    PROCESSING = PREFIX + "message_processing_seconds"
-
-    def __init__(self) -> None:
-        self.counts = [0] * (len(PROCESSING_BUCKETS) + 1)     # the last one is +Inf
-        self.sum = 0.0
-        self.created = time.time()
-        self._le = [floatToGoString(b) for b in (*PROCESSING_BUCKETS, math.inf)]
-
-    def observe(self, seconds: float) -> None:
-        """Count one message; a time equal to a bucket's bound falls in that bucket."""
-        self.counts[bisect_left(PROCESSING_BUCKETS, seconds)] += 1
-        self.sum += seconds
-
-    def describe(self) -> list[Metric]:
-        return [CounterMetricFamily(self.RECEIVED, "Messages the worker took from the queue."),
-                Metric(self.PROCESSING, "Worker time per message, decode to metrics.", "histogram")]
-
-    def collect(self) -> Iterator[Metric]:
-        counts, total_seconds = list(self.counts), self.sum
-        created = self.created if getattr(_client_metrics, "_use_created", True) else None
-        received, histogram = self.describe()
-        received.add_metric([], float(sum(counts)), created=created)
-        yield received
-        cumulative = 0
-        for le, n in zip(self._le, counts):
-            cumulative += n
-            histogram.add_sample(self.PROCESSING + "_bucket", {"le": le}, float(cumulative))
-        histogram.add_sample(self.PROCESSING + "_count", {}, float(cumulative))
-        histogram.add_sample(self.PROCESSING + "_sum", {}, total_seconds)
-        if created is not None:
-            histogram.add_sample(self.PROCESSING + "_created", {}, created)
-        yield histogram
-
-
-class _WindowStats:
-    """Ring buffer behind the windowed error gauges (worker thread only)."""
-
-    def __init__(self, binary: bool, window: int, refresh_every: int) -> None:
-        if window < 1 or refresh_every < 1:
-            raise ValueError("residual_window and refresh_every must be >= 1")
-        self.binary = binary
-        self.err = np.zeros(window)          # residuals, or per-sample log-loss when binary
-        self.hit = np.zeros(window)          # binary: 1 when classed right
-        self.count = self.pos = 0
-        self.every = refresh_every
-        self.pending = refresh_every - 1     # so the first outcome refreshes the gauges
-
-    def add(self, measured: float, predicted: float) -> bool:
-        """Take one outcome; True when the gauges are due for a refresh."""
-        if self.binary:
-            # Probability clipped as scikit-learn's log_loss does (float64 eps).
-            p = min(max(predicted, 2.220446049250313e-16), 1 - 2.220446049250313e-16)
-            e = -math.log(p) if measured >= 0.5 else -math.log1p(-p)
-            self.hit[self.pos] = float((predicted >= 0.5) == (measured >= 0.5))
-        else:
-            e = measured - predicted
-        if math.isfinite(e):                 # a non-finite value is the guard's business
-            self.err[self.pos] = e
-            self.pos = (self.pos + 1) % self.err.size
-            self.count = min(self.count + 1, self.err.size)
-        self.pending += 1
-        if self.pending < self.every or not self.count:
-            return False
-        self.pending = 0
-        return True
-
-    def summary(self) -> list[float]:
-        """Regression: RMSE then residual percentiles; binary: mean log-loss then accuracy."""
-        e = self.err[:self.count]
-        if self.binary:
-            return [float(np.mean(e)), float(np.mean(self.hit[:self.count]))]
-        return [float(np.sqrt(np.mean(e * e))), *np.percentile(e, RESIDUAL_PERCENTILES).tolist()]
 
 
 # The endpoint lives in its own module; re-exported so callers import one place.
