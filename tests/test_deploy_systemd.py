@@ -47,3 +47,41 @@ def test_unit_speaks_notify_and_reload_by_hup():
                  "CapabilityBoundingSet=\n", "MemoryMax=", "WatchdogSec="):
         assert line in text, line
     assert re.search(r"^User=edgeprop$", text, re.M)
+
+
+def _filter_members(tool: str, group: str, seen: set | None = None) -> set[str]:
+    """System calls in a systemd filter group, nested groups expanded."""
+    seen = set() if seen is None else seen
+    out = subprocess.run([tool, "syscall-filter", group], capture_output=True, text=True,
+                         timeout=60).stdout
+    calls: set[str] = set()
+    for line in out.splitlines()[1:]:
+        name = line.strip()
+        if not name or name.startswith("#"):
+            continue
+        if name.startswith("@"):
+            if name not in seen:
+                seen.add(name)
+                calls |= _filter_members(tool, name, seen)
+        else:
+            calls.add(name)
+    return calls
+
+
+def test_the_unit_lets_the_daemon_start_its_link_process():
+    # edgeprop run starts its broker link as a child (subprocess: vfork/clone, execve, a
+    # Unix socket pair, close_range for pass_fds, wait4). The unit's SystemCallFilter must
+    # allow those, or the service fails at start on a real box.
+    tool = require_tool("systemd-analyze")
+    text = open(UNIT).read()
+    allowed, denied = set(), set()
+    for line in text.splitlines():
+        if line.startswith("SystemCallFilter="):
+            value = line.split("=", 1)[1]
+            target = denied if value.startswith("~") else allowed
+            for group in value.lstrip("~").split():
+                target |= _filter_members(tool, group) if group.startswith("@") else {group}
+    needed = {"execve", "clone", "vfork", "socketpair", "close_range", "wait4", "pipe2"}
+    assert needed <= allowed, sorted(needed - allowed)
+    assert not needed & denied, sorted(needed & denied)
+    assert "AF_UNIX" in next(l for l in text.splitlines() if l.startswith("RestrictAddressFamilies="))
