@@ -130,8 +130,10 @@ class LinkProcess:
         except subprocess.TimeoutExpired:
             self._kill()
         self._conn.close()
-        os.close(self._wake_r)
-        os.close(self._wake_w)
+        # -1 first: a late signal's wake() must not write into a reused descriptor number
+        wake_r, wake_w, self._wake_r, self._wake_w = self._wake_r, self._wake_w, -1, -1
+        os.close(wake_r)
+        os.close(wake_w)
 
     def _kill(self) -> None:
         if self._proc is not None and self._proc.poll() is None:
@@ -187,6 +189,8 @@ class LinkProcess:
 
     def wake(self) -> None:
         """Make a waiting (or the next) ``receive`` return at once; safe from a signal handler."""
+        if self._wake_w < 0:
+            return              # stopped
         try:
             os.write(self._wake_w, b"!")
         except (BlockingIOError, OSError):
