@@ -425,3 +425,31 @@ def test_timer_saves_a_model_only_after_it_learned_something(tmp_path) -> None:
     assert [f["reason"] for _, f in p.events("checkpoint_saved")] == ["timer", "timer"]
     p.engine.checkpoint_all("shutdown")        # on stop (and on request) it always saves
     assert len(p.events("checkpoint_saved")) == 3
+
+
+# -- the published JSON, built without json.dumps on the hot path ------------------------------
+
+def test_message_json_writes_exactly_what_json_dumps_writes() -> None:
+    # Reference: the standard library's json.dumps with the options the contract used before
+    # the message was built by hand. Values drawn to cover what a message can hold.
+    from daemon.engine import _MESSAGE_KEYS, _message_json
+    rng = np.random.default_rng(20261202)
+    pool = [None, True, False, 0, 7, 123456789, -0.0, 0.0, 5e-324, 1e-300, 1.7976931348623157e308,
+            0.1, -2.5, "20261202T140000Z-000003", 'odd "id" \\ é']
+
+    def draw():
+        if rng.random() < 0.5:
+            return float(rng.normal() * 10.0 ** rng.integers(-12, 13))
+        return pool[rng.integers(len(pool))]
+    for _ in range(5000):
+        values = tuple(draw() for _ in _MESSAGE_KEYS)
+        name = str(rng.choice(["m1", "bearing \"temp\"", "kühlraum"]))
+        expected = json.dumps(dict(zip(("model", *_MESSAGE_KEYS), (name, *values))),
+                              separators=(",", ":"), allow_nan=False)
+        assert _message_json(json.dumps(name), values) == expected
+    for bad in (math.nan, math.inf, -math.inf):
+        values = (1.0, bad) + (None,) * (len(_MESSAGE_KEYS) - 2)
+        with pytest.raises(ValueError):
+            _message_json('"m1"', values)
+        with pytest.raises(ValueError):
+            json.dumps(list(values), allow_nan=False)
