@@ -10,6 +10,7 @@ from __future__ import annotations
 import threading
 from collections import deque
 from dataclasses import dataclass
+from typing import Iterable
 
 
 @dataclass(slots=True)
@@ -48,13 +49,18 @@ class InboundQueue:
 
     def put(self, item: Inbound) -> None:
         """Append ``item``; if over either bound, discard the oldest items. Never blocks on the consumer."""
+        self.put_many((item,))
+
+    def put_many(self, items: Iterable[Inbound]) -> None:
+        """``put`` for several items in order, under one lock."""
         with self._cond:
-            self._items.append(item)
-            self.bytes += len(item.payload)
-            while len(self._items) > self.capacity or (
-                    self.max_bytes is not None and self.bytes > self.max_bytes and len(self._items) > 1):
-                self.bytes -= len(self._items.popleft().payload)
-                self.dropped += 1
+            for item in items:
+                self._items.append(item)
+                self.bytes += len(item.payload)
+                while len(self._items) > self.capacity or (
+                        self.max_bytes is not None and self.bytes > self.max_bytes and len(self._items) > 1):
+                    self.bytes -= len(self._items.popleft().payload)
+                    self.dropped += 1
             self._cond.notify()
 
     def get(self, timeout: float) -> Inbound | None:

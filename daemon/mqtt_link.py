@@ -136,6 +136,7 @@ class _Client(mqtt.Client):
     _rbuf: bytes = b""          # bytes read from the socket, not yet handed to paho
     _rpos: int = 0
     _refills_left: int = 1
+    after_read: Callable[[], None] | None = None   # runs once the packets of one read are handled
 
     def loop_read(self, max_packets: int = 1) -> MQTTErrorCode:
         # paho reads one packet per select() and each packet in ~3 small recv() calls, each of
@@ -146,6 +147,8 @@ class _Client(mqtt.Client):
         rc = super().loop_read(max_packets)
         while rc == MQTTErrorCode.MQTT_ERR_SUCCESS and self._rpos < len(self._rbuf):
             rc = super().loop_read(max_packets)
+        if self.after_read is not None:
+            self.after_read()
         if _QUICKACK is not None and self._sock is not None:
             try:   # acknowledge what was just read now (see _QUICKACK); the flag is not sticky
                 self._sock.setsockopt(socket.IPPROTO_TCP, _QUICKACK, 1)
@@ -191,7 +194,8 @@ class BrokerLink:
                  on_message: Callable[[str, bytes, float], None],
                  clock: Callable[[], float] = time.time, log: LogFn | None = None,
                  rng: Jitter | None = None, max_pending: int = 1000,
-                 on_state_change: Callable[[], None] | None = None) -> None:
+                 on_state_change: Callable[[], None] | None = None,
+                 on_read_done: Callable[[], None] | None = None) -> None:
         _check_protocol_and_user(settings)
         if max_pending < 1:
             raise ValueError(f"max_pending must be >= 1, got {max_pending!r}")
@@ -208,6 +212,7 @@ class BrokerLink:
         self.last_error: str | None = None
         self._on_message = on_message
         self._on_state_change = on_state_change or (lambda: None)   # connected or lost, at once
+        self._on_read_done = on_read_done     # after each read's messages: a batch ends there
         self._clock = clock
         self._log = log or _stderr_log
         self._rng = rng if rng is not None else random.Random()
@@ -254,6 +259,8 @@ class BrokerLink:
         client.on_subscribe = self._handle_subscribe
         client.on_message = self._handle_message
         client.on_publish = self._handle_publish
+        if self._on_read_done is not None:
+            client.after_read = self._handle_read_done
         return client
 
     # ---- called by the service -------------------------------------------------------
@@ -428,10 +435,19 @@ class BrokerLink:
         try:
             self._on_message(message.topic, message.payload, arrival_t)
         except Exception as exc:  # noqa: BLE001 - a bad message must not end the network thread
-            self.callback_errors += 1
-            if self.callback_errors & (self.callback_errors - 1) == 0:   # 1st, 2nd, 4th, 8th ...
-                self._log("error", "inbound_callback_failed", error=f"{type(exc).__name__}: {exc}",
-                          count=self.callback_errors)
+            self._callback_failed(exc)
+
+    def _handle_read_done(self) -> None:
+        try:
+            self._on_read_done()
+        except Exception as exc:  # noqa: BLE001 - must not end the network thread either
+            self._callback_failed(exc)
+
+    def _callback_failed(self, exc: Exception) -> None:
+        self.callback_errors += 1
+        if self.callback_errors & (self.callback_errors - 1) == 0:   # 1st, 2nd, 4th, 8th ...
+            self._log("error", "inbound_callback_failed", error=f"{type(exc).__name__}: {exc}",
+                      count=self.callback_errors)
 
     def _handle_publish(self, client: mqtt.Client, userdata: object, mid: int,
                         reason: object, properties: object) -> None:

@@ -19,7 +19,7 @@ from types import SimpleNamespace
 import pytest
 
 from daemon.inbound import InboundQueue
-from daemon.link_child import Forwarder
+from daemon.link_child import DIRECT_MAX, Forwarder
 from daemon_proc import Daemon, Probe, child_pids, model_config, retained, wait_until, write_config
 
 
@@ -145,8 +145,11 @@ def test_forwarded_readings_keep_their_order_whichever_way_they_go():
     def network_thread():
         for i in range(n):
             forward.on_message("site/p1/speed", str(i).encode(), float(i))
+            if i % 7 in (0, 3):
+                forward.end_of_read()     # reads of 1, 3 and 4 readings, as paho's thread ends them
             if i % 2000 == 0:
                 time.sleep(0.01)          # quiet spells: the queue drains, direct sends resume
+        forward.end_of_read()
     producer = threading.Thread(target=network_thread)
     producer.start()
     time.sleep(0.05)
@@ -162,9 +165,16 @@ def test_forwarded_readings_keep_their_order_whichever_way_they_go():
 
 def test_the_network_thread_never_waits_for_a_parent_that_does_not_read():
     forward, queue, parent, stopping, thread = _forwarder(capacity=1000)
-    payload = b"x" * 1000                 # 50 MB in all: far beyond the socket pair's buffers
-    producer = threading.Thread(target=lambda: [forward.on_message("t", payload, 0.0)
-                                                 for _ in range(50_000)])
+
+    def network_thread():
+        for i in range(50_000):
+            # 50 MB in all, far beyond the socket pair's buffers; a distinct object each time,
+            # or pickle would send one payload and 49,999 references to it
+            forward.on_message("t", b"x" * 999 + bytes([i % 256]), 0.0)
+            if i % 3 == 0:
+                forward.end_of_read()
+        forward.end_of_read()
+    producer = threading.Thread(target=network_thread)
     producer.start()
     producer.join(30)
     assert not producer.is_alive(), "on_message blocked on a full socket"
@@ -177,3 +187,26 @@ def test_the_network_thread_never_waits_for_a_parent_that_does_not_read():
     queue.wake()
     thread.join(5)
     assert not thread.is_alive()
+
+
+def test_the_readings_of_one_read_reach_the_parent_as_one_batch():
+    forward, queue, parent, stopping, thread = _forwarder(capacity=1000)
+    for i in range(5):
+        forward.on_message("site/p1/speed", str(i).encode(), float(i))
+    assert not parent.poll(0.05), "a reading left before its read ended"
+    forward.end_of_read()
+    sizes: list[int] = []
+    got = _readings(parent, 5, 5, sizes)
+    assert [p for _t, p, _a in got] == [b"0", b"1", b"2", b"3", b"4"]
+    assert sizes == [5]
+    # a read larger than DIRECT_MAX bytes is cut, in order; a reading over it takes the queue
+    big = b"y" * (DIRECT_MAX // 3)
+    for i in range(7):
+        forward.on_message("site/p1/spectrum", big + str(i).encode(), float(i))
+    forward.on_message("site/p1/spectrum", b"z" * (DIRECT_MAX + 1), 7.0)
+    forward.end_of_read()
+    got = _readings(parent, 8, 5)
+    assert [p[-1:] for _t, p, _a in got] == [b"0", b"1", b"2", b"3", b"4", b"5", b"6", b"z"]
+    stopping.set()
+    queue.wake()
+    thread.join(5)
