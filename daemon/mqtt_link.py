@@ -22,6 +22,7 @@ import paho.mqtt.client as mqtt
 from paho.mqtt.enums import CallbackAPIVersion, MQTTErrorCode
 
 from daemon.errors import ConfigError
+from daemon.mqtt_frames import take_publishes
 from daemon.settings import BrokerSettings, TlsSettings
 
 LogFn = Callable[..., None]
@@ -44,6 +45,7 @@ STABLE_S = 10.0                # a connection that lived this long resets the ba
 # broker's Nagle algorithm then holds the next readings until that ACK comes. Measured with
 # mosquitto's default config (set_tcp_nodelay false): +25 ms median per reading without this.
 _QUICKACK = getattr(socket, "TCP_QUICKACK", None)
+_CORK = getattr(socket, "TCP_CORK", None)          # Linux: hold partial segments until unset
 READ_CHUNK = 65536             # bytes per recv() from the broker
 READ_REFILLS = 16              # recv() calls per select() round at most (1 MiB), then select again
 
@@ -121,6 +123,15 @@ def check_link_settings(settings: BrokerSettings) -> None:
         tls_context(settings.tls)
 
 
+def _set_tcp(sock: socket.socket, option: int, value: int) -> bool:
+    """A TCP socket option, best effort: False where the socket refuses it."""
+    try:
+        sock.setsockopt(socket.IPPROTO_TCP, option, value)
+        return True
+    except OSError:
+        return False
+
+
 def _settled(info: mqtt.MQTTMessageInfo) -> bool:
     """True once a publish left (QoS 0), was acknowledged (QoS 1) or was given up by paho."""
     try:
@@ -137,6 +148,7 @@ class _Client(mqtt.Client):
     _rpos: int = 0
     _refills_left: int = 1
     after_read: Callable[[], None] | None = None   # runs once the packets of one read are handled
+    fast_publish: Callable[[str, bytes], None] | None = None   # QoS 0 readings, bypassing paho
 
     def loop_read(self, max_packets: int = 1) -> MQTTErrorCode:
         # paho reads one packet per select() and each packet in ~3 small recv() calls, each of
@@ -150,14 +162,28 @@ class _Client(mqtt.Client):
         if self.after_read is not None:
             self.after_read()
         if _QUICKACK is not None and self._sock is not None:
-            try:   # acknowledge what was just read now (see _QUICKACK); the flag is not sticky
-                self._sock.setsockopt(socket.IPPROTO_TCP, _QUICKACK, 1)
-            except OSError:
-                pass
+            # acknowledge what was just read now (see _QUICKACK); the flag is not sticky
+            _set_tcp(self._sock, _QUICKACK, 1)
         return rc
+
+    def loop_write(self) -> MQTTErrorCode:
+        # paho sends each queued packet with its own send(); with Nagle off each becomes a
+        # segment the kernel carries to the broker at once, most of a publish's cost here.
+        # Corked, the predictions of one batch leave as one segment when the cork is pulled.
+        sock = self._sock
+        cork = _CORK is not None and sock is not None and len(self._out_packet) > 1
+        if cork:
+            cork = _set_tcp(sock, _CORK, 1)
+        try:
+            return super().loop_write()
+        finally:
+            if cork and self._sock is sock:
+                _set_tcp(sock, _CORK, 0)
 
     def _sock_recv(self, bufsize: int) -> bytes:
         # paho's only reader (_packet_read) asks for 1 byte, 1 byte, then the rest of a packet
+        if bufsize == 1 and self.fast_publish is not None and self._in_packet["command"] == 0:
+            self._take_publishes()      # at a packet boundary: readings first, paho the rest
         buf, pos = self._rbuf, self._rpos
         if pos >= len(buf):
             if self._refills_left <= 0:
@@ -171,6 +197,21 @@ class _Client(mqtt.Client):
             self._rbuf = buf
         self._rpos = pos + bufsize
         return buf[pos:pos + bufsize]
+
+    def _take_publishes(self) -> None:
+        """Deliver the whole QoS 0 PUBLISH packets at the front of the buffer, refilling it
+        while they use it up; stops before anything else, which paho then reads."""
+        v5 = self._protocol == mqtt.MQTTv5
+        buf, pos = self._rbuf, self._rpos
+        while True:
+            pos = self._rpos = take_publishes(buf, pos, v5, self.fast_publish)
+            if pos < len(buf) or self._refills_left <= 0:
+                return
+            self._refills_left -= 1
+            buf = super()._sock_recv(READ_CHUNK)    # BlockingIOError: paho returns to select()
+            self._rbuf, self._rpos, pos = buf, 0, 0
+            if not buf:
+                return                               # closed: paho's read of 1 byte sees it
 
     def _sock_close(self) -> None:
         self._rbuf, self._rpos = b"", 0      # bytes of a closed connection mean nothing now
@@ -259,6 +300,7 @@ class BrokerLink:
         client.on_subscribe = self._handle_subscribe
         client.on_message = self._handle_message
         client.on_publish = self._handle_publish
+        client.fast_publish = self._deliver
         if self._on_read_done is not None:
             client.after_read = self._handle_read_done
         return client
@@ -431,9 +473,13 @@ class BrokerLink:
             self._ready.set()
 
     def _handle_message(self, client: mqtt.Client, userdata: object, message: mqtt.MQTTMessage) -> None:
+        # what paho reads itself: the odd packet that mqtt_frames leaves to it
+        self._deliver(message.topic, message.payload)
+
+    def _deliver(self, topic: str, payload: bytes) -> None:
         arrival_t = self._clock()
         try:
-            self._on_message(message.topic, message.payload, arrival_t)
+            self._on_message(topic, payload, arrival_t)
         except Exception as exc:  # noqa: BLE001 - a bad message must not end the network thread
             self._callback_failed(exc)
 
