@@ -22,7 +22,7 @@ import paho.mqtt.client as mqtt
 from paho.mqtt.enums import CallbackAPIVersion, MQTTErrorCode
 
 from daemon.errors import ConfigError
-from daemon.mqtt_frames import take_publishes
+from daemon.mqtt_client import LinkClient
 from daemon.settings import BrokerSettings, TlsSettings
 
 LogFn = Callable[..., None]
@@ -40,14 +40,6 @@ SUBSCRIBE_QOS = 0
 STATUS_QOS = 1                 # online/offline must not be lost: QoS 1, retained
 CONNECT_TIMEOUT_S = 5.0        # TCP + TLS handshake; also bounds how long stop() can wait
 STABLE_S = 10.0                # a connection that lived this long resets the backoff (common practice, no source)
-# Linux only. One connection both receives readings and sends predictions, so the kernel
-# treats it as interactive and delays its ACKs (up to 40 ms) hoping to piggyback them; the
-# broker's Nagle algorithm then holds the next readings until that ACK comes. Measured with
-# mosquitto's default config (set_tcp_nodelay false): +25 ms median per reading without this.
-_QUICKACK = getattr(socket, "TCP_QUICKACK", None)
-_CORK = getattr(socket, "TCP_CORK", None)          # Linux: hold partial segments until unset
-READ_CHUNK = 65536             # bytes per recv() from the broker
-READ_REFILLS = 16              # recv() calls per select() round at most (1 MiB), then select again
 
 
 def _stderr_log(level: str, event: str, **fields: object) -> None:
@@ -123,109 +115,12 @@ def check_link_settings(settings: BrokerSettings) -> None:
         tls_context(settings.tls)
 
 
-def _set_tcp(sock: socket.socket, option: int, value: int) -> bool:
-    """A TCP socket option, best effort: False where the socket refuses it."""
-    try:
-        sock.setsockopt(socket.IPPROTO_TCP, option, value)
-        return True
-    except OSError:
-        return False
-
-
 def _settled(info: mqtt.MQTTMessageInfo) -> bool:
     """True once a publish left (QoS 0), was acknowledged (QoS 1) or was given up by paho."""
     try:
         return info.is_published()
     except (RuntimeError, ValueError):     # paho raises for messages it dropped, e.g. on reconnect
         return True
-
-
-class _Client(mqtt.Client):
-    """paho's client, remembering why the last connection attempt failed (paho drops the reason)."""
-
-    last_connect_error: str = ""
-    _rbuf: bytes = b""          # bytes read from the socket, not yet handed to paho
-    _rpos: int = 0
-    _refills_left: int = 1
-    after_read: Callable[[], None] | None = None   # runs once the packets of one read are handled
-    fast_publish: Callable[[str, bytes], None] | None = None   # QoS 0 readings, bypassing paho
-
-    def loop_read(self, max_packets: int = 1) -> MQTTErrorCode:
-        # paho reads one packet per select() and each packet in ~3 small recv() calls, each of
-        # which gives up the GIL; with the worker thread busy, every give-up costs this thread
-        # a wait for the GIL. So read big chunks (_sock_recv) and hand paho every packet they
-        # hold before going back to select(): +30-40 % sustained msg/s (tests/bench_daemon.py).
-        self._refills_left = READ_REFILLS
-        rc = super().loop_read(max_packets)
-        while rc == MQTTErrorCode.MQTT_ERR_SUCCESS and self._rpos < len(self._rbuf):
-            rc = super().loop_read(max_packets)
-        if self.after_read is not None:
-            self.after_read()
-        if _QUICKACK is not None and self._sock is not None:
-            # acknowledge what was just read now (see _QUICKACK); the flag is not sticky
-            _set_tcp(self._sock, _QUICKACK, 1)
-        return rc
-
-    def loop_write(self) -> MQTTErrorCode:
-        # paho sends each queued packet with its own send(); with Nagle off each becomes a
-        # segment the kernel carries to the broker at once, most of a publish's cost here.
-        # Corked, the predictions of one batch leave as one segment when the cork is pulled.
-        sock = self._sock
-        cork = _CORK is not None and sock is not None and len(self._out_packet) > 1
-        if cork:
-            cork = _set_tcp(sock, _CORK, 1)
-        try:
-            return super().loop_write()
-        finally:
-            if cork and self._sock is sock:
-                _set_tcp(sock, _CORK, 0)
-
-    def _sock_recv(self, bufsize: int) -> bytes:
-        # paho's only reader (_packet_read) asks for 1 byte, 1 byte, then the rest of a packet
-        if bufsize == 1 and self.fast_publish is not None and self._in_packet["command"] == 0:
-            self._take_publishes()      # at a packet boundary: readings first, paho the rest
-        buf, pos = self._rbuf, self._rpos
-        if pos >= len(buf):
-            if self._refills_left <= 0:
-                raise BlockingIOError()      # enough for one round; select() first, then more
-            self._refills_left -= 1
-            buf = super()._sock_recv(READ_CHUNK)
-            if len(buf) <= bufsize:          # also b"" at end of stream: paho sees it closed
-                self._rbuf, self._rpos = b"", 0
-                return buf
-            pos = 0
-            self._rbuf = buf
-        self._rpos = pos + bufsize
-        return buf[pos:pos + bufsize]
-
-    def _take_publishes(self) -> None:
-        """Deliver the whole QoS 0 PUBLISH packets at the front of the buffer, refilling it
-        while they use it up; stops before anything else, which paho then reads."""
-        v5 = self._protocol == mqtt.MQTTv5
-        buf, pos = self._rbuf, self._rpos
-        while True:
-            pos = self._rpos = take_publishes(buf, pos, v5, self.fast_publish)
-            if pos < len(buf) or self._refills_left <= 0:
-                return
-            self._refills_left -= 1
-            buf = super()._sock_recv(READ_CHUNK)    # BlockingIOError: paho returns to select()
-            self._rbuf, self._rpos, pos = buf, 0, 0
-            if not buf:
-                return                               # closed: paho's read of 1 byte sees it
-
-    def _sock_close(self) -> None:
-        self._rbuf, self._rpos = b"", 0      # bytes of a closed connection mean nothing now
-        super()._sock_close()
-
-    def reconnect(self) -> MQTTErrorCode:
-        try:
-            return super().reconnect()
-        except OSError as exc:
-            self.last_connect_error = str(exc) or type(exc).__name__
-            raise
-        except Exception as exc:  # anything else would end paho's thread and the link for good
-            self.last_connect_error = f"{type(exc).__name__}: {exc}"
-            raise OSError(self.last_connect_error) from exc
 
 
 class BrokerLink:
@@ -281,9 +176,9 @@ class BrokerLink:
         """True while the broker has accepted our connection."""
         return self._connected.is_set()
 
-    def _build_client(self, settings: BrokerSettings) -> _Client:
+    def _build_client(self, settings: BrokerSettings) -> LinkClient:
         v5 = settings.protocol == "5"
-        client = _Client(CallbackAPIVersion.VERSION2, client_id=self.client_id,
+        client = LinkClient(CallbackAPIVersion.VERSION2, client_id=self.client_id,
                          clean_session=None if v5 else True,
                          protocol=mqtt.MQTTv5 if v5 else mqtt.MQTTv311, reconnect_on_failure=True)
         client.connect_timeout = CONNECT_TIMEOUT_S
@@ -340,6 +235,10 @@ class BrokerLink:
             if not _settled(info):
                 self._pending[info.mid] = info
         return True
+
+    def write_now(self) -> None:
+        """Send what ``publish`` queued from the calling thread if paho's thread is idle."""
+        self._client.write_now()
 
     def stop(self, timeout: float = 2.0) -> None:
         """Publish retained ``offline``, give it up to ``timeout`` s to leave, then disconnect."""

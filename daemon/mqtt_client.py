@@ -1,0 +1,165 @@
+"""paho's client with the changes the daemon's link needs: fewer system calls, readings read fast.
+
+paho stays in charge of the connection (CONNECT, keepalive, acknowledgements, reconnects);
+this subclass changes how bytes move: reads in large chunks, QoS 0 readings taken straight
+from those chunks (daemon.mqtt_frames), predictions corked into one segment per batch and
+written by the thread that queued them when paho's thread is not using the socket.
+It leans on paho 2.x internals (``_sock_recv``, ``_packet_write``, ``_in_packet``,
+``_out_packet``, ``_sock``, ``_ssl``); tests/test_mqtt_link.py runs it against a real broker.
+"""
+from __future__ import annotations
+
+import socket
+import threading
+from typing import Callable
+
+import paho.mqtt.client as mqtt
+from paho.mqtt.enums import MQTTErrorCode
+
+from daemon.mqtt_frames import take_publishes
+
+# Linux only. One connection both receives readings and sends predictions, so the kernel
+# treats it as interactive and delays its ACKs (up to 40 ms) hoping to piggyback them; the
+# broker's Nagle algorithm then holds the next readings until that ACK comes. Measured with
+# mosquitto's default config (set_tcp_nodelay false): +25 ms median per reading without this.
+_QUICKACK = getattr(socket, "TCP_QUICKACK", None)
+_CORK = getattr(socket, "TCP_CORK", None)          # Linux: hold partial segments until unset
+READ_CHUNK = 65536             # bytes per recv() from the broker
+READ_REFILLS = 16              # recv() calls per select() round at most (1 MiB), then select again
+
+
+def _set_tcp(sock: socket.socket, option: int, value: int) -> bool:
+    """A TCP socket option, best effort: False where the socket refuses it."""
+    try:
+        sock.setsockopt(socket.IPPROTO_TCP, option, value)
+        return True
+    except OSError:
+        return False
+
+
+class LinkClient(mqtt.Client):
+    """paho's client, remembering why the last connection attempt failed (paho drops the reason)."""
+
+    last_connect_error: str = ""
+    _rbuf: bytes = b""          # bytes read from the socket, not yet handed to paho
+    _rpos: int = 0
+    _refills_left: int = 1
+    after_read: Callable[[], None] | None = None   # runs once the packets of one read are handled
+    fast_publish: Callable[[str, bytes], None] | None = None   # QoS 0 readings, bypassing paho
+
+    def __init__(self, *args: object, **kwargs: object) -> None:
+        super().__init__(*args, **kwargs)
+        # Held by paho's thread while it reads, writes, connects or closes; a thread that
+        # queued publishes writes them itself only when it gets this lock without waiting.
+        self._io = threading.RLock()
+
+    def write_now(self) -> None:
+        """Send what is queued from this thread, unless paho's thread is busy with the socket.
+
+        Saves the wake-up of paho's thread (a publish otherwise waits for it): lower latency
+        per prediction. Plain TCP only: one TLS connection must not read in one thread and
+        write in another. Errors are left for paho's thread, which sees them on its next round.
+        """
+        if self._ssl or not self._io.acquire(blocking=False):
+            return
+        try:
+            if self._sock is not None and self._out_packet and self.is_connected():
+                self._write_corked()
+        finally:
+            self._io.release()
+
+    def loop_read(self, max_packets: int = 1) -> MQTTErrorCode:
+        with self._io:
+            return self._read_round(max_packets)
+
+    def _read_round(self, max_packets: int) -> MQTTErrorCode:
+        # paho reads one packet per select() and each packet in ~3 small recv() calls, each of
+        # which gives up the GIL; with the worker thread busy, every give-up costs this thread
+        # a wait for the GIL. So read big chunks (_sock_recv) and hand paho every packet they
+        # hold before going back to select(): +30-40 % sustained msg/s (tests/bench_daemon.py).
+        self._refills_left = READ_REFILLS
+        rc = super().loop_read(max_packets)
+        while rc == MQTTErrorCode.MQTT_ERR_SUCCESS and self._rpos < len(self._rbuf):
+            rc = super().loop_read(max_packets)
+        if self.after_read is not None:
+            self.after_read()
+        if _QUICKACK is not None and self._sock is not None:
+            # acknowledge what was just read now (see _QUICKACK); the flag is not sticky
+            _set_tcp(self._sock, _QUICKACK, 1)
+        return rc
+
+    def loop_write(self) -> MQTTErrorCode:
+        with self._io:
+            sock = self._sock
+            cork = self._cork(sock)
+            try:
+                return super().loop_write()
+            finally:
+                if cork and self._sock is sock:
+                    _set_tcp(sock, _CORK, 0)
+
+    def _write_corked(self) -> None:
+        sock = self._sock
+        cork = self._cork(sock)
+        try:
+            self._packet_write()
+        finally:
+            if cork and self._sock is sock:
+                _set_tcp(sock, _CORK, 0)
+
+    def _cork(self, sock: socket.socket | None) -> bool:
+        # paho sends each queued packet with its own send(); with Nagle off each becomes a
+        # segment the kernel carries to the broker at once, most of a publish's cost here.
+        # Corked, the predictions of one batch leave as one segment when the cork is pulled.
+        if _CORK is None or sock is None or len(self._out_packet) < 2:
+            return False
+        return _set_tcp(sock, _CORK, 1)
+
+    def _sock_recv(self, bufsize: int) -> bytes:
+        # paho's only reader (_packet_read) asks for 1 byte, 1 byte, then the rest of a packet
+        if bufsize == 1 and self.fast_publish is not None and self._in_packet["command"] == 0:
+            self._take_publishes()      # at a packet boundary: readings first, paho the rest
+        buf, pos = self._rbuf, self._rpos
+        if pos >= len(buf):
+            if self._refills_left <= 0:
+                raise BlockingIOError()      # enough for one round; select() first, then more
+            self._refills_left -= 1
+            buf = super()._sock_recv(READ_CHUNK)
+            if len(buf) <= bufsize:          # also b"" at end of stream: paho sees it closed
+                self._rbuf, self._rpos = b"", 0
+                return buf
+            pos = 0
+            self._rbuf = buf
+        self._rpos = pos + bufsize
+        return buf[pos:pos + bufsize]
+
+    def _take_publishes(self) -> None:
+        """Deliver the whole QoS 0 PUBLISH packets at the front of the buffer, refilling it
+        while they use it up; stops before anything else, which paho then reads."""
+        v5 = self._protocol == mqtt.MQTTv5
+        buf, pos = self._rbuf, self._rpos
+        while True:
+            pos = self._rpos = take_publishes(buf, pos, v5, self.fast_publish)
+            if pos < len(buf) or self._refills_left <= 0:
+                return
+            self._refills_left -= 1
+            buf = super()._sock_recv(READ_CHUNK)    # BlockingIOError: paho returns to select()
+            self._rbuf, self._rpos, pos = buf, 0, 0
+            if not buf:
+                return                               # closed: paho's read of 1 byte sees it
+
+    def _sock_close(self) -> None:
+        with self._io:
+            self._rbuf, self._rpos = b"", 0      # bytes of a closed connection mean nothing now
+            super()._sock_close()
+
+    def reconnect(self) -> MQTTErrorCode:
+        try:
+            with self._io:
+                return super().reconnect()
+        except OSError as exc:
+            self.last_connect_error = str(exc) or type(exc).__name__
+            raise
+        except Exception as exc:  # anything else would end paho's thread and the link for good
+            self.last_connect_error = f"{type(exc).__name__}: {exc}"
+            raise OSError(self.last_connect_error) from exc
