@@ -144,9 +144,7 @@ def _serve(conn: Connection, link: BrokerLink, queue: InboundQueue, log: Log, fo
             break
         kind = message[0]
         if kind == "pubs":
-            for topic, payload, qos, retain in message[1]:
-                link.publish(topic, payload, qos, retain)
-            link.write_now()
+            link.publish_batch(message[1])
         elif kind == "level":
             log.set_level(message[1])
         elif kind == "stop":

@@ -11,7 +11,8 @@ from __future__ import annotations
 
 import socket
 import threading
-from typing import Callable
+from contextlib import contextmanager
+from typing import Callable, Iterator
 
 import paho.mqtt.client as mqtt
 from paho.mqtt.enums import MQTTErrorCode
@@ -37,6 +38,28 @@ def _set_tcp(sock: socket.socket, option: int, value: int) -> bool:
         return False
 
 
+class _Wake:
+    """paho's wake-up socket, which a thread about to write its own publishes holds back.
+
+    paho writes a byte to it on every publish so that its thread leaves select() and writes;
+    that thread then competes for the interpreter lock with the one publishing, which is
+    about to write anyway. paho calls only ``send`` and ``close`` on it.
+    """
+
+    def __init__(self, sock: socket.socket) -> None:
+        self.sock = sock
+        self.local = threading.local()
+
+    def send(self, data: bytes) -> int:
+        if getattr(self.local, "held", False):
+            self.local.owed = True
+            return len(data)
+        return self.sock.send(data)
+
+    def close(self) -> None:
+        self.sock.close()
+
+
 class LinkClient(mqtt.Client):
     """paho's client, remembering why the last connection attempt failed (paho drops the reason)."""
 
@@ -53,13 +76,39 @@ class LinkClient(mqtt.Client):
         # queued publishes writes them itself only when it gets this lock without waiting.
         self._io = threading.RLock()
 
-    def write_now(self) -> None:
-        """Send what is queued from this thread, unless paho's thread is busy with the socket.
+    def loop_start(self) -> MQTTErrorCode:
+        rc = super().loop_start()
+        if self._sockpairW is not None:
+            self._sockpairW = _Wake(self._sockpairW)
+        return rc
 
-        Saves the wake-up of paho's thread (a publish otherwise waits for it): lower latency
-        per prediction. Plain TCP only: one TLS connection must not read in one thread and
-        write in another. Errors are left for paho's thread, which sees them on its next round.
+    @contextmanager
+    def writing_here(self) -> Iterator[None]:
+        """Publishes queued inside this block are written by this thread as it leaves it.
+
+        Unless paho's thread is busy with the socket: then (or if anything is left unsent)
+        paho's thread is woken to write as usual. Saves a thread wake-up per batch of
+        predictions, and the contest for the interpreter lock that came with it.
         """
+        wake = self._sockpairW
+        if not isinstance(wake, _Wake):
+            yield
+            return
+        wake.local.held, wake.local.owed = True, False
+        try:
+            yield
+        finally:
+            wake.local.held = False
+            self._write_now()
+            if wake.local.owed and self._out_packet:
+                try:
+                    wake.sock.send(b"0")
+                except BlockingIOError:
+                    pass        # full of wake-ups already: paho's thread is awake
+
+    def _write_now(self) -> None:
+        # Plain TCP only: one TLS connection must not read in one thread and write in
+        # another. Errors are left to paho's thread, which meets them on its next round.
         if self._ssl or not self._io.acquire(blocking=False):
             return
         try:

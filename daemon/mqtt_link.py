@@ -236,9 +236,11 @@ class BrokerLink:
                 self._pending[info.mid] = info
         return True
 
-    def write_now(self) -> None:
-        """Send what ``publish`` queued from the calling thread if paho's thread is idle."""
-        self._client.write_now()
+    def publish_batch(self, messages: list[tuple[str, bytes, int, bool]]) -> None:
+        """``publish`` each (topic, payload, qos, retain), written by this thread where it can."""
+        with self._client.writing_here():
+            for topic, payload, qos, retain in messages:
+                self.publish(topic, payload, qos, retain)
 
     def stop(self, timeout: float = 2.0) -> None:
         """Publish retained ``offline``, give it up to ``timeout`` s to leave, then disconnect."""

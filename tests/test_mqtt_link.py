@@ -324,6 +324,66 @@ def test_readings_bypass_paho_in_order_whatever_their_size_and_properties(broker
         link.stop()
 
 
+class CountingSocket:
+    """Stands in for paho's wake-up socket: counts the wake-ups that really went out."""
+
+    def __init__(self, sock) -> None:
+        self.sock, self.sent = sock, 0
+
+    def send(self, data: bytes) -> int:
+        self.sent += 1
+        return self.sock.send(data)
+
+    def close(self) -> None:
+        self.sock.close()
+
+
+def test_a_batch_of_predictions_is_written_by_the_thread_that_queued_it(broker):
+    watcher = Watcher(broker.port, ["edgeprop/station-7/#"])
+    link = make_link(broker.port, [])
+    try:
+        link.start()
+        assert link.wait_connected(5)
+        # let paho's thread finish with the "online" status and its acknowledgement first:
+        # while it reads or writes, the batch is left to it by design
+        watcher.expect("edgeprop/station-7/status", b"online")
+        assert wait_until(lambda: not link._pending, 5)
+        time.sleep(0.2)
+        wake = link._client._sockpairW
+        wake.sock = counting = CountingSocket(wake.sock)
+        link.publish_batch([(f"edgeprop/station-7/m/{i}", str(i).encode(), 0, False) for i in range(3)])
+        # nothing left for paho's thread: it was not woken (its select() waits up to 1 s)
+        assert counting.sent == 0 and not link._client._out_packet
+        for i in range(3):
+            watcher.expect(f"edgeprop/station-7/m/{i}", str(i).encode())
+        # far more than the socket takes at once: the rest is left to paho's thread, woken for it
+        link._client.socket().setsockopt(socket.SOL_SOCKET, socket.SO_SNDBUF, 4096)
+        big = [(f"edgeprop/station-7/m/big{i}", bytes([i]) * 300_000, 0, False) for i in range(20)]
+        link.publish_batch(big)
+        assert counting.sent == 1
+        for topic, payload, _q, _r in big:
+            watcher.expect(topic, payload, timeout=10)
+    finally:
+        link.stop()
+        watcher.close()
+
+
+def test_over_tls_paho_thread_writes_the_batch(broker_factory, pki):
+    # one TLS connection must not be read and written by two threads: paho's thread is woken
+    server = broker_factory(tls=pki)
+    link = make_link(server.port, [], tls=TlsSettings(pki.ca_file))
+    try:
+        link.start()
+        assert link.wait_connected(5)
+        wake = link._client._sockpairW
+        wake.sock = counting = CountingSocket(wake.sock)
+        link.publish_batch([("edgeprop/station-7/m", b"1", 0, False), ("edgeprop/station-7/m", b"2", 0, False)])
+        assert counting.sent == 1
+        assert wait_until(lambda: not link._client._out_packet, 5)
+    finally:
+        link.stop()
+
+
 # ---- credentials --------------------------------------------------------------------------
 
 def write_secret(directory, text: str, mode: int) -> str:
