@@ -29,6 +29,7 @@ from .settings import BrokerSettings
 
 START_TIMEOUT_S = 30.0       # a small ARM box can take seconds to import paho in the child
 OUTBOX_MAX = 64              # publishes queued before a flush is forced
+OUTBOX_HOLD_S = 0.005        # under load, a prediction waits at most this long for company
 PROMPT_BATCH = 4             # batches of readings up to this size publish each prediction at once
 
 
@@ -55,6 +56,8 @@ class LinkProcess:
         os.set_blocking(self._wake_w, False)
         self._stopped = False
         self._outbox: list[tuple] = []
+        self._outbox_since = 0.0     # monotonic time of the oldest publish in the outbox
+        self._readable = select.poll()
         self._batch_size = 0         # readings in the batch the worker is handling
 
     def __repr__(self) -> str:
@@ -99,6 +102,7 @@ class LinkProcess:
                 pass_fds=(theirs.fileno(),), stdin=subprocess.DEVNULL, stdout=subprocess.DEVNULL,
                 env=env, start_new_session=False)
             self._conn = Connection(os.dup(ours.fileno()))
+        self._readable.register(self._conn.fileno(), select.POLLIN)
         self._conn.send(self._setup)
         if not self._conn.poll(START_TIMEOUT_S):
             self._kill()
@@ -144,15 +148,30 @@ class LinkProcess:
     def publish(self, topic: str, payload: bytes | str, qos: int = 0, retain: bool = False) -> bool:
         """Queue one message for the child; ``flush`` hands the queued ones over in one write.
 
-        Under load, one write per batch of readings instead of one per prediction: each write
+        Under load, one write per many predictions instead of one per prediction: each write
         wakes the child, and those wake-ups cost the worker a fifth of its time.
         """
+        if not self._outbox:
+            self._outbox_since = time.monotonic()
         self._outbox.append((topic, payload, qos, retain))
-        # A reading that came alone is no load: its prediction leaves at once, not after the
-        # learning step that follows it.
-        if self._batch_size <= PROMPT_BATCH or len(self._outbox) >= OUTBOX_MAX:
+        # A reading that came alone, with nothing waiting behind it, is no load: its
+        # prediction leaves at once, not after the learning step that follows it.
+        if len(self._outbox) >= OUTBOX_MAX or (self._batch_size <= PROMPT_BATCH and not self._more_to_read()):
             self.flush()
         return True
+
+    def flush_unless_busy(self) -> None:
+        """``flush``, unless more readings wait and the outbox is young and small.
+
+        Called after each batch of readings: while readings keep coming, predictions
+        gather for up to OUTBOX_HOLD_S or OUTBOX_MAX of them, then go in one write.
+        """
+        if self._outbox and (len(self._outbox) >= OUTBOX_MAX or not self._more_to_read()
+                             or time.monotonic() - self._outbox_since >= OUTBOX_HOLD_S):
+            self.flush()
+
+    def _more_to_read(self) -> bool:
+        return bool(self._readable.poll(0))
 
     def flush(self) -> None:
         """Send what ``publish`` queued; the child publishes it or counts it dropped."""

@@ -117,7 +117,7 @@ class Service:
                     self._handle_one(item)
                     if self.flags.stop:
                         break
-                self.link.flush()          # this batch's predictions, in one write
+                self.link.flush_unless_busy()    # this batch's predictions, with the next ones under load
                 now = time.monotonic()
                 # A wake-up with nothing to read is a signal or a control request: act at once.
                 # Otherwise housekeeping every HOUSEKEEPING_S is plenty, and at one message per

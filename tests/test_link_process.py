@@ -9,6 +9,7 @@ takes its child and the broker connection with it, so the broker says "offline".
 from __future__ import annotations
 
 import os
+import select
 import signal
 import socket
 import threading
@@ -20,6 +21,8 @@ import pytest
 
 from daemon.inbound import InboundQueue
 from daemon.link_child import DIRECT_MAX, Forwarder
+from daemon.link_process import OUTBOX_HOLD_S, OUTBOX_MAX, LinkProcess
+from daemon.settings import BrokerSettings
 from daemon_proc import Daemon, Probe, child_pids, model_config, retained, wait_until, write_config
 
 
@@ -210,3 +213,40 @@ def test_the_readings_of_one_read_reach_the_parent_as_one_batch():
     stopping.set()
     queue.wake()
     thread.join(5)
+
+
+def _outbox_under_test():
+    """A LinkProcess whose child end is a plain socket pair held by the test."""
+    link = LinkProcess(BrokerSettings(), "n1", [], log=lambda *a, **k: None)
+    ours, theirs = socket.socketpair()
+    link._conn = Connection(ours.detach())
+    link._readable.register(link._conn.fileno(), select.POLLIN)
+    link._batch_size = 1
+    return link, Connection(theirs.detach())
+
+
+def _pubs(child: Connection) -> list[int]:
+    sizes = []
+    while child.poll(0.05):
+        message = child.recv()
+        assert message[0] == "pubs"
+        sizes.append(len(message[1]))
+    return sizes
+
+
+def test_predictions_leave_at_once_when_idle_and_gather_while_readings_wait():
+    link, child = _outbox_under_test()
+    link.publish("edgeprop/n1/m1", b"1")
+    assert _pubs(child) == [1]                       # nothing waiting: out before learning
+    child.send(("batch", [], (True, 0, 0, 0, 0)))   # a reading waits for the worker
+    link.publish("edgeprop/n1/m1", b"2")
+    link.flush_unless_busy()
+    link.publish("edgeprop/n1/m1", b"3")
+    link.flush_unless_busy()
+    assert _pubs(child) == []                        # held: more to read, young, small
+    time.sleep(OUTBOX_HOLD_S)
+    link.flush_unless_busy()
+    assert _pubs(child) == [2]                       # held no longer than OUTBOX_HOLD_S
+    for i in range(OUTBOX_MAX):
+        link.publish("edgeprop/n1/m1", str(i).encode())
+    assert _pubs(child) == [OUTBOX_MAX]              # a full outbox goes at once
