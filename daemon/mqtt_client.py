@@ -4,8 +4,9 @@ paho stays in charge of the connection (CONNECT, keepalive, acknowledgements, re
 this subclass changes how bytes move: reads in large chunks, QoS 0 readings taken straight
 from those chunks (daemon.mqtt_frames), predictions corked into one segment per batch and
 written by the thread that queued them when paho's thread is not using the socket.
-It leans on paho 2.x internals (``_sock_recv``, ``_packet_write``, ``_in_packet``,
-``_out_packet``, ``_sock``, ``_ssl``); tests/test_mqtt_link.py runs it against a real broker.
+It leans on paho 2.x internals (``_sock_recv``, ``_sock_close``, ``_packet_write``,
+``_in_packet``, ``_out_packet``, ``_sock``, ``_ssl``, ``_sockpairW``, ``_protocol``), hence
+the cap on paho's version; tests/test_mqtt_link.py runs it against a real broker.
 """
 from __future__ import annotations
 
@@ -61,7 +62,8 @@ class _Wake:
 
 
 class LinkClient(mqtt.Client):
-    """paho's client, remembering why the last connection attempt failed (paho drops the reason)."""
+    """paho's client with chunked reads, readings read directly, corked and direct writes;
+    it also remembers why the last connection attempt failed (paho drops the reason)."""
 
     last_connect_error: str = ""
     _rbuf: bytes = b""          # bytes read from the socket, not yet handed to paho
@@ -113,7 +115,8 @@ class LinkClient(mqtt.Client):
             return
         try:
             if self._sock is not None and self._out_packet and self.is_connected():
-                self._write_corked()
+                with self._corked():
+                    self._packet_write()
         finally:
             self._io.release()
 
@@ -138,31 +141,22 @@ class LinkClient(mqtt.Client):
         return rc
 
     def loop_write(self) -> MQTTErrorCode:
-        with self._io:
-            sock = self._sock
-            cork = self._cork(sock)
-            try:
-                return super().loop_write()
-            finally:
-                if cork and self._sock is sock:
-                    _set_tcp(sock, _CORK, 0)
+        with self._io, self._corked():
+            return super().loop_write()
 
-    def _write_corked(self) -> None:
-        sock = self._sock
-        cork = self._cork(sock)
-        try:
-            self._packet_write()
-        finally:
-            if cork and self._sock is sock:
-                _set_tcp(sock, _CORK, 0)
-
-    def _cork(self, sock: socket.socket | None) -> bool:
+    @contextmanager
+    def _corked(self) -> Iterator[None]:
         # paho sends each queued packet with its own send(); with Nagle off each becomes a
         # segment the kernel carries to the broker at once, most of a publish's cost here.
         # Corked, the predictions of one batch leave as one segment when the cork is pulled.
-        if _CORK is None or sock is None or len(self._out_packet) < 2:
-            return False
-        return _set_tcp(sock, _CORK, 1)
+        sock = self._sock
+        cork = (_CORK is not None and sock is not None and len(self._out_packet) > 1
+                and _set_tcp(sock, _CORK, 1))
+        try:
+            yield
+        finally:
+            if cork and self._sock is sock:
+                _set_tcp(sock, _CORK, 0)
 
     def _sock_recv(self, bufsize: int) -> bytes:
         # paho's only reader (_packet_read) asks for 1 byte, 1 byte, then the rest of a packet
@@ -170,10 +164,7 @@ class LinkClient(mqtt.Client):
             self._take_publishes()      # at a packet boundary: readings first, paho the rest
         buf, pos = self._rbuf, self._rpos
         if pos >= len(buf):
-            if self._refills_left <= 0:
-                raise BlockingIOError()      # enough for one round; select() first, then more
-            self._refills_left -= 1
-            buf = super()._sock_recv(READ_CHUNK)
+            buf = self._refill()
             if len(buf) <= bufsize:          # also b"" at end of stream: paho sees it closed
                 self._rbuf, self._rpos = b"", 0
                 return buf
@@ -191,11 +182,18 @@ class LinkClient(mqtt.Client):
             pos = self._rpos = take_publishes(buf, pos, v5, self.fast_publish)
             if pos < len(buf) or self._refills_left <= 0:
                 return
-            self._refills_left -= 1
-            buf = super()._sock_recv(READ_CHUNK)    # BlockingIOError: paho returns to select()
+            buf = self._refill()
             self._rbuf, self._rpos, pos = buf, 0, 0
             if not buf:
                 return                               # closed: paho's read of 1 byte sees it
+
+    def _refill(self) -> bytes:
+        """The next chunk from the socket; BlockingIOError (paho: back to select()) when none
+        is waiting or this round had its READ_REFILLS."""
+        if self._refills_left <= 0:
+            raise BlockingIOError()
+        self._refills_left -= 1
+        return super()._sock_recv(READ_CHUNK)
 
     def _sock_close(self) -> None:
         with self._io:
