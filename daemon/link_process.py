@@ -21,7 +21,6 @@ import time
 from multiprocessing.connection import Connection
 
 from .errors import ConfigError, EdgepropError
-from .inbound import Inbound
 from .link_child import LinkState
 from .logs import LogFn
 from .mqtt_link import check_link_settings
@@ -190,8 +189,9 @@ class LinkProcess:
         except (OSError, ValueError):
             pass
 
-    def receive(self, timeout: float) -> list[Inbound]:
-        """The next batch of readings; empty after ``timeout`` s, on ``wake()`` or a state report."""
+    def receive(self, timeout: float) -> list[tuple[str, bytes, float]]:
+        """The next batch of readings as (topic, payload, arrival_t), as they crossed the
+        socket (no object per reading); empty after ``timeout`` s, on ``wake()`` or a state report."""
         ready = select.select([self._conn.fileno(), self._wake_r], [], [], timeout)[0]
         if self._wake_r in ready:
             self._drain_wake()
@@ -202,7 +202,7 @@ class LinkProcess:
         self.state = LinkState(*message[-1])
         if message[0] == "batch":
             self._batch_size = len(message[1])
-            return [Inbound(topic, payload, t) for topic, payload, t in message[1]]
+            return message[1]
         self._batch_size = 0
         return []
 

@@ -21,7 +21,6 @@ from .config import diff_settings, load_config
 from .control import ControlServer
 from .engine import Engine
 from .errors import CheckpointError, ConfigError, ControlError, EdgepropError
-from .inbound import Inbound
 from .link_process import LinkProcess, LinkProcessLost
 from .logs import Log
 from .metrics import Metrics, serve
@@ -135,13 +134,14 @@ class Service:
         finally:
             self._shutdown()
 
-    def _handle_one(self, item: Inbound) -> None:
+    def _handle_one(self, item: tuple[str, bytes, float]) -> None:
+        topic, payload, arrival_t = item
         try:
-            self.engine.handle(item.topic, item.payload, item.arrival_t)
+            self.engine.handle(topic, payload, arrival_t)
         except Exception as exc:  # per-message catch: count, log, go on
             self.metrics.rejected("internal_error", None)
             self.engine.say_once("error", "message_failed", ("internal", type(exc).__name__),
-                                 topic=item.topic, error=f"{type(exc).__name__}: {exc}")
+                                 topic=topic, error=f"{type(exc).__name__}: {exc}")
 
     def _between_messages(self) -> None:
         self.engine.tick(self.clock())

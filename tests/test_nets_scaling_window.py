@@ -188,6 +188,14 @@ def test_recent_mode_favours_new_samples_by_its_half_life():
         w.sample(1, rng, mode="oldest")
 
 
+def test_uniform_mode_gives_every_filled_slot_the_same_chance():
+    # 7 filled slots, 70,000 draws: each count is binomial(70k, 1/7), sd = 92.6; 5 sd = 463
+    w = filled(50, 7)
+    _, by = w.sample(70_000, np.random.default_rng(4), mode="uniform")
+    counts = np.bincount(by[:, 0].astype(int), minlength=8)[1:]
+    assert np.all(np.abs(counts - 10_000) < 463), counts
+
+
 def test_resize_and_keep_newest():
     w = filled(8, 11)                     # holds samples 3..10 (y 4..11)
     w.resize(3)
