@@ -11,7 +11,7 @@ Everything that crosses it is built by edgeprop itself (payload bytes travel as 
 ``bytes``), so pickling it is safe.
 
   parent -> child   ("setup", BrokerSettings, node, topics, log_level, queue_size, queue_bytes)
-                    ("pubs", [(topic, payload, qos, retain), ...])
+                    ("pubs", [(topic, payload, qos, retain) | (count, qos0_packets), ...])
                     ("level", log_level)
                     ("stop", timeout_s)
   child -> parent   ("hello", pid) | ("fatal", [problem, ...])

@@ -23,6 +23,7 @@ from multiprocessing.connection import Connection
 from .errors import ConfigError, EdgepropError
 from .link_child import LinkState
 from .logs import LogFn
+from .mqtt_frames import publish_packet
 from .mqtt_link import check_link_settings
 from .settings import BrokerSettings
 
@@ -54,8 +55,11 @@ class LinkProcess:
         os.set_blocking(self._wake_r, False)
         os.set_blocking(self._wake_w, False)
         self._stopped = False
-        self._outbox: list[tuple] = []
+        self._outbox: list[tuple] = []  # (topic, payload, qos, retain) or (count, QoS 0 packets)
+        self._packets: list[bytes] = []  # QoS 0 packets after the last outbox entry
         self._outbox_since = 0.0     # monotonic time of the oldest publish in the outbox
+        self._v5 = settings.protocol == "5"
+        self._topics: dict[str, bytes] = {}
         self._readable = select.poll()
         self._batch_size = 0         # readings in the batch the worker is handling
 
@@ -148,16 +152,45 @@ class LinkProcess:
         """Queue one message for the child; ``flush`` hands the queued ones over in one write.
 
         Under load, one write per many predictions instead of one per prediction: each write
-        wakes the child, and those wake-ups cost the worker a fifth of its time.
+        wakes the child, and those wake-ups cost the worker a fifth of its time. A QoS 0
+        message travels as its finished MQTT packet, which the child writes as it is.
         """
-        if not self._outbox:
+        if not self._outbox and not self._packets:
             self._outbox_since = time.monotonic()
-        self._outbox.append((topic, payload, qos, retain))
+        if isinstance(payload, str):
+            payload = payload.encode()
+        packet = self._packet(topic, payload, retain) if qos == 0 else None
+        if packet is not None:
+            self._packets.append(packet)
+        else:
+            self._close_packet_run()
+            self._outbox.append((topic, payload, qos, retain))
         # A reading that came alone, with nothing waiting behind it, is no load: its
         # prediction leaves at once, not after the learning step that follows it.
-        if len(self._outbox) >= OUTBOX_MAX or (self._batch_size <= PROMPT_BATCH and not self._more_to_read()):
+        if self._waiting() >= OUTBOX_MAX or (self._batch_size <= PROMPT_BATCH and not self._more_to_read()):
             self.flush()
         return True
+
+    def _packet(self, topic: str, payload: bytes, retain: bool) -> bytes | None:
+        """The QoS 0 PUBLISH packet, or None for one MQTT cannot carry (paho's publish in the
+        child then refuses it with its own message)."""
+        name = self._topics.get(topic)
+        if name is None:
+            if len(self._topics) > 1000:        # topics come from the config: a handful
+                self._topics.clear()
+            name = self._topics[topic] = topic.encode()
+        try:
+            return publish_packet(name, payload, retain, self._v5)
+        except ValueError:
+            return None
+
+    def _close_packet_run(self) -> None:
+        if self._packets:
+            self._outbox.append((len(self._packets), b"".join(self._packets)))
+            self._packets = []
+
+    def _waiting(self) -> int:
+        return len(self._outbox) + len(self._packets)
 
     def flush_unless_busy(self) -> None:
         """``flush``, unless more readings wait and the outbox is young and small.
@@ -165,8 +198,8 @@ class LinkProcess:
         Called after each batch of readings: while readings keep coming, predictions
         gather for up to OUTBOX_HOLD_S or OUTBOX_MAX of them, then go in one write.
         """
-        if self._outbox and (len(self._outbox) >= OUTBOX_MAX or not self._more_to_read()
-                             or time.monotonic() - self._outbox_since >= OUTBOX_HOLD_S):
+        if self._waiting() and (self._waiting() >= OUTBOX_MAX or not self._more_to_read()
+                                or time.monotonic() - self._outbox_since >= OUTBOX_HOLD_S):
             self.flush()
 
     def _more_to_read(self) -> bool:
@@ -174,13 +207,14 @@ class LinkProcess:
 
     def flush(self) -> None:
         """Send what ``publish`` queued; the child publishes it or counts it dropped."""
+        self._close_packet_run()
         if not self._outbox:
             return
         batch, self._outbox = self._outbox, []
         try:
             self._conn.send(("pubs", batch))
         except (OSError, ValueError):
-            self.lost_publishes += len(batch)
+            self.lost_publishes += sum(item[0] if len(item) == 2 else 1 for item in batch)
 
     def set_log_level(self, level: str) -> None:
         """The child logs its own events (connects, losses); keep its level with the daemon's."""

@@ -3,9 +3,11 @@
 paho stays in charge of the connection (CONNECT, keepalive, acknowledgements, reconnects);
 this subclass changes how bytes move: reads in large chunks, QoS 0 readings taken straight
 from those chunks (daemon.mqtt_frames), predictions corked into one segment per batch and
-written by the thread that queued them when paho's thread is not using the socket.
+written by the thread that queued them when paho's thread is not using the socket; QoS 0
+predictions arrive as finished packets (``write_packets``) and skip paho's message objects.
 It leans on paho 2.x internals (``_sock_recv``, ``_sock_close``, ``_packet_write``,
-``_in_packet``, ``_out_packet``, ``_sock``, ``_ssl``, ``_sockpairW``, ``_protocol``), hence
+``_in_packet``, ``_out_packet``, ``_sock``, ``_ssl``, ``_sockpairW``, ``_protocol``,
+``_msgtime_mutex``, ``_last_msg_out``, ``time_func``), hence
 the cap on paho's version; tests/test_mqtt_link.py runs it against a real broker.
 """
 from __future__ import annotations
@@ -107,6 +109,56 @@ class LinkClient(mqtt.Client):
                     wake.sock.send(b"0")
                 except BlockingIOError:
                     pass        # full of wake-ups already: paho's thread is awake
+
+    def write_packets(self, data: bytes, max_queued: int) -> bool:
+        """Send ready-made QoS 0 PUBLISH packets (bytes that need no acknowledgement).
+
+        Written here at once when paho has nothing queued and its thread is not using the
+        socket (plain TCP only, as in ``_write_now``); otherwise, and for what the socket
+        did not take, queued on paho's own queue behind what is there (order kept) and
+        paho's thread woken. False (nothing sent) when ``max_queued`` packets already wait.
+        A connection that breaks loses them, as paho loses QoS 0 publishes.
+        """
+        if not self._ssl and self._io.acquire(blocking=False):
+            try:
+                if self._sock is not None and not self._out_packet:
+                    try:
+                        sent = self._sock.send(data)
+                    except BlockingIOError:
+                        sent = 0
+                    except OSError:
+                        return True         # lost with the connection; paho's thread sees why
+                    if sent:
+                        with self._msgtime_mutex:   # paho's keepalive: no ping needed yet
+                            self._last_msg_out = mqtt.time_func()
+                    if sent == len(data):
+                        return True
+                    # the rest goes first in paho's (empty) queue before this thread lets go
+                    self._queue_raw(data[sent:])
+                    self._wake_paho()
+                    return True
+            finally:
+                self._io.release()
+        if len(self._out_packet) >= max_queued:
+            return False
+        self._queue_raw(data)
+        self._wake_paho()
+        return True
+
+    def _queue_raw(self, data: bytes) -> None:
+        # command 0: paho's _packet_write then only writes the bytes (a PUBLISH entry would
+        # make it look for a message-info object to mark published); reconnect() clears it
+        self._out_packet.append({"command": 0, "mid": 0, "qos": 0, "pos": 0,
+                                 "to_process": len(data), "packet": data, "info": None})
+
+    def _wake_paho(self) -> None:
+        wake = self._sockpairW
+        if wake is None:
+            return
+        try:
+            (wake.sock if isinstance(wake, _Wake) else wake).send(b"0")
+        except (BlockingIOError, OSError):
+            pass        # full of wake-ups already (paho's thread is awake), or closed
 
     def _write_now(self) -> None:
         # Plain TCP only: one TLS connection must not read in one thread and write in

@@ -236,11 +236,24 @@ class BrokerLink:
                 self._pending[info.mid] = info
         return True
 
-    def publish_batch(self, messages: list[tuple[str, bytes, int, bool]]) -> None:
-        """``publish`` each (topic, payload, qos, retain), written by this thread where it can."""
+    def publish_batch(self, messages: list[tuple]) -> None:
+        """In order: ``publish`` each (topic, payload, qos, retain), and ``publish_packets``
+        each (count, packets); written by this thread where it can."""
         with self._client.writing_here():
-            for topic, payload, qos, retain in messages:
-                self.publish(topic, payload, qos, retain)
+            for item in messages:
+                if len(item) == 2:
+                    self.publish_packets(*item)
+                else:
+                    self.publish(*item)
+
+    def publish_packets(self, count: int, packets: bytes) -> bool:
+        """Send ``count`` ready-made QoS 0 PUBLISH packets; False (all counted) when offline
+        or when ``max_pending`` writes already wait."""
+        if not self._connected.is_set() or not self._client.write_packets(packets, self.max_pending):
+            with self._lock:
+                self.publish_dropped += count
+            return False
+        return True
 
     def stop(self, timeout: float = 2.0) -> None:
         """Publish retained ``offline``, give it up to ``timeout`` s to leave, then disconnect."""

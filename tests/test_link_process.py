@@ -21,7 +21,8 @@ import pytest
 
 from daemon.inbound import InboundQueue
 from daemon.link_child import DIRECT_MAX, Forwarder
-from daemon.link_process import OUTBOX_HOLD_S, OUTBOX_MAX, LinkProcess
+from daemon.link_process import OUTBOX_HOLD_S, OUTBOX_MAX, PROMPT_BATCH, LinkProcess
+from daemon.mqtt_frames import take_publishes
 from daemon.settings import BrokerSettings
 from daemon_proc import Daemon, Probe, child_pids, model_config, retained, wait_until, write_config
 
@@ -226,12 +227,33 @@ def _outbox_under_test():
 
 
 def _pubs(child: Connection) -> list[int]:
+    """Messages per write to the child (a run of QoS 0 packets counts as its count)."""
     sizes = []
     while child.poll(0.05):
         message = child.recv()
         assert message[0] == "pubs"
-        sizes.append(len(message[1]))
+        sizes.append(sum(item[0] if len(item) == 2 else 1 for item in message[1]))
     return sizes
+
+
+def test_qos0_messages_cross_as_their_packets_and_keep_their_order_with_the_rest():
+    link, child = _outbox_under_test()
+    link._batch_size = PROMPT_BATCH + 1                 # under load: nothing leaves on its own
+    link.publish("edgeprop/n1/m1", b'{"predicted":1.5}')
+    link.publish("edgeprop/n1/m1", "text", retain=True)
+    link.publish("edgeprop/n1/m1/info", b"{}", qos=1, retain=True)
+    link.publish("edgeprop/n1/m2", b"3")
+    link.flush()
+    kind, items = child.recv()
+    assert kind == "pubs" and len(items) == 3
+    assert items[1] == ("edgeprop/n1/m1/info", b"{}", 1, True)
+    assert items[0][0] == 2 and items[2][0] == 1
+    got = []
+    assert take_publishes(items[0][1], 0, False, lambda t, p: got.append((t, p))) == len(items[0][1])
+    assert got == [("edgeprop/n1/m1", b'{"predicted":1.5}'), ("edgeprop/n1/m1", b"text")]
+    assert items[0][1][0] == 0x30 and items[2][1][0] == 0x30   # PUBLISH, QoS 0, no RETAIN
+    second = items[0][1][2 + len("edgeprop/n1/m1") + 2 + len(b'{"predicted":1.5}'):]
+    assert second[0] == 0x31                            # RETAIN bit on the second packet only
 
 
 def test_predictions_leave_at_once_when_idle_and_gather_while_readings_wait():

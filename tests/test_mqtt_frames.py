@@ -14,7 +14,7 @@ from paho.mqtt.enums import MQTTProtocolVersion
 from paho.mqtt.packettypes import PacketTypes
 from paho.mqtt.properties import Properties
 
-from daemon.mqtt_frames import read_varint, take_publishes
+from daemon.mqtt_frames import publish_packet, read_varint, take_publishes, write_varint
 
 
 def varint(n: int) -> bytes:
@@ -118,3 +118,26 @@ def test_mqtt5_properties_longer_than_the_packet_are_left_to_paho():
 def test_reading_starts_where_asked():
     a, b = publish(b"a", b"1"), publish(b"b", b"2")
     assert ours(a + b, v5=False, pos=len(a)) == ([("b", b"2")], len(a) + len(b))
+
+
+@pytest.mark.parametrize("n", [0, 1, 127, 128, 16383, 16384, 2_097_151, 2_097_152, 268_435_455])
+def test_written_remaining_length_is_the_specifications(n):
+    assert write_varint(n) == varint(n)
+
+
+@pytest.mark.parametrize("v5", [False, True])
+def test_built_packets_read_back_by_paho_and_equal_the_hand_built_ones(v5):
+    rng = random.Random(11)
+    for _ in range(300):
+        topic = "edgeprop/" + "".join(rng.choice("abcxyz/_-0é") for _ in range(rng.randint(1, 40)))
+        payload = bytes(rng.randrange(256) for _ in range(rng.choice([0, 1, 50, 200, 20_000])))
+        retain = rng.random() < 0.3
+        packet = publish_packet(topic.encode(), payload, retain, v5)
+        assert packet == publish(topic.encode(), payload, v5, retain)
+        assert paho_reads(packet, v5) == (topic, payload)
+        assert packet[0] & 0x01 == retain
+
+
+def test_a_topic_mqtt_cannot_carry_is_refused():
+    with pytest.raises(ValueError, match="65535"):
+        publish_packet(b"t" * 65536, b"1", False, False)

@@ -20,6 +20,7 @@ from paho.mqtt.enums import CallbackAPIVersion
 from broker_fixture import make_test_pki
 from daemon.errors import ConfigError
 from daemon.inbound import Inbound, InboundQueue
+from daemon.mqtt_frames import publish_packet
 from daemon.mqtt_link import BrokerLink, read_password_file, tls_context
 from daemon.settings import BrokerSettings, TlsSettings
 
@@ -382,6 +383,118 @@ def test_over_tls_paho_thread_writes_the_batch(broker_factory, pki):
         assert wait_until(lambda: not link._client._out_packet, 5)
     finally:
         link.stop()
+
+
+def _packets(messages: list[tuple[str, bytes]], v5: bool = False, retain: bool = False) -> tuple[int, bytes]:
+    return len(messages), b"".join(publish_packet(t.encode(), p, retain, v5) for t, p in messages)
+
+
+def _collect(watcher: Watcher, n: int, timeout: float = 10.0) -> list[tuple[str, bytes]]:
+    got = []
+    deadline = time.monotonic() + timeout
+    while len(got) < n and time.monotonic() < deadline:
+        try:
+            topic, payload, _retain = watcher.messages.get(timeout=max(0.0, deadline - time.monotonic()))
+        except queue.Empty:
+            break
+        if not topic.endswith("/status"):
+            got.append((topic, payload))
+    return got
+
+
+@pytest.mark.parametrize("protocol", ["3.1.1", "5"])
+def test_ready_made_packets_go_out_in_order_with_paho_publishes(broker, protocol):
+    if protocol == "5" and broker.kind == "amqtt":
+        pytest.skip("amqtt speaks MQTT 3.1.1 only")
+    watcher = Watcher(broker.port, ["edgeprop/station-7/#"])
+    link = make_link(broker.port, [], protocol=protocol)
+    v5 = protocol == "5"
+    try:
+        link.start()
+        assert link.wait_connected(5)
+        watcher.expect("edgeprop/station-7/status", b"online")
+        assert wait_until(lambda: not link._pending, 5)
+        time.sleep(0.2)
+        wake = link._client._sockpairW
+        wake.sock = counting = CountingSocket(wake.sock)
+        first = [("edgeprop/station-7/m/a", b"1"), ("edgeprop/station-7/m/b", b"2")]
+        before = link._client._last_msg_out
+        link.publish_batch([_packets(first, v5)])
+        # nothing queued before them and the socket free: written here, paho's thread not woken
+        assert counting.sent == 0 and not link._client._out_packet
+        assert link._client._last_msg_out > before      # paho's keepalive knows we just sent
+        link.publish_batch([_packets([("edgeprop/station-7/m/c", b"3")], v5),
+                            ("edgeprop/station-7/m/info", b"i", 1, True),
+                            _packets([("edgeprop/station-7/m/d", b"4")], v5, retain=True)])
+        assert _collect(watcher, 5) == [*first, ("edgeprop/station-7/m/c", b"3"),
+                                        ("edgeprop/station-7/m/info", b"i"),
+                                        ("edgeprop/station-7/m/d", b"4")]
+        late = Watcher(broker.port, ["edgeprop/station-7/m/d"])
+        try:
+            assert late.expect("edgeprop/station-7/m/d", b"4") is True
+        finally:
+            late.close()
+        # far more than the socket takes at once: the rest waits on paho's queue, in order
+        link._client.socket().setsockopt(socket.SOL_SOCKET, socket.SO_SNDBUF, 4096)
+        big = [(f"edgeprop/station-7/m/big{i}", bytes([i]) * 300_000) for i in range(12)]
+        before = counting.sent
+        link.publish_batch([_packets(big[:6], v5), _packets(big[6:], v5)])
+        assert counting.sent > before
+        assert _collect(watcher, 12, timeout=20) == big
+        assert link.publish_dropped == 0
+    finally:
+        link.stop()
+        watcher.close()
+
+
+def test_ready_made_packets_offline_or_over_the_bound_are_counted_dropped(broker):
+    link = make_link(broker.port, [], **FAST_RETRY)
+    link.max_pending = 3
+    try:
+        assert link.publish_packets(*_packets([("edgeprop/station-7/m", b"1")] * 4)) is False
+        assert link.publish_dropped == 4                     # not connected yet: all four
+        link.start()
+        assert link.wait_connected(5)
+        assert wait_until(lambda: not link._pending, 5)     # "online" is out and acknowledged
+        broker.pause()                                       # the broker reads nothing more
+        big = _packets([("edgeprop/station-7/m", b"x" * 2_000_000)])
+        accepted = 0
+        for _ in range(20):
+            if not link.publish_packets(*big):
+                break
+            accepted += 1
+        # the kernel's buffers take a few; then at most max_pending wait on paho's queue
+        assert 1 <= accepted < 20 and link.publish_dropped == 5   # refused, not piled up
+        assert len(link._client._out_packet) <= 3
+    finally:
+        broker.resume()
+        link.stop()
+
+
+def test_over_tls_ready_made_packets_are_written_by_paho_thread(broker_factory, pki):
+    server = broker_factory(tls=pki)
+    sender = make_link(server.port, [], tls=TlsSettings(pki.ca_file))
+    received = InboundQueue(10)
+    reader = make_link(server.port, ["edgeprop/station-7/m"], sink=received, node="reader",
+                       tls=TlsSettings(pki.ca_file))
+    try:
+        reader.start()
+        sender.start()
+        assert reader.wait_connected(5) and sender.wait_connected(5)
+        time.sleep(0.3)                                      # the reader's subscription settles
+        wake = sender._client._sockpairW
+        wake.sock = counting = CountingSocket(wake.sock)
+        sender.publish_batch([_packets([("edgeprop/station-7/m", b"1"), ("edgeprop/station-7/m", b"2")])])
+        assert counting.sent >= 1
+        got = received.get_many(10, timeout=5)
+        while len(got) < 2:
+            more = received.get_many(10, timeout=5)
+            assert more, f"only {got} arrived"
+            got += more
+        assert [(i.topic, i.payload) for i in got] == [("edgeprop/station-7/m", b"1"), ("edgeprop/station-7/m", b"2")]
+    finally:
+        sender.stop()
+        reader.stop()
 
 
 # ---- credentials --------------------------------------------------------------------------
