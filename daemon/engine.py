@@ -215,7 +215,7 @@ class Engine:
             return None
         if cid is not None:
             self.log("info", "checkpoint_saved", model=rt.name, id=cid, reason=reason,
-                     samples=rt.learner.samples)
+                     samples=rt.learner.samples, guard_fallback=rt.good_id == cid)
             if self.metrics is not None:
                 self.metrics.checkpoint_saved(rt.name, cid, self.clock())
         return cid

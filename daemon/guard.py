@@ -68,6 +68,16 @@ class DivergenceGuard:
             return "loss_blowup"
         return None
 
+    @property
+    def calm(self) -> bool:
+        """No run over the bar in progress and the recent average under it.
+
+        A model whose loss has begun to climb may still be finite and under the trip count
+        when a timer checkpoint is taken; such a state must not become the one the guard
+        falls back to, or the fallback would carry the fault it is meant to undo.
+        """
+        return self.run == 0 and (self.seen <= MIN_SEEN or self.short <= self.bar)
+
     def describe(self) -> str:
         """Why a blow-up trip happened, for the log."""
         s = self.settings

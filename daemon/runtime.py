@@ -42,6 +42,7 @@ class ModelRuntime:
         self.interval = ConformalInterval(settings.interval)
         self.guard = DivergenceGuard(settings.guard)
         self.checkpoint_id: str | None = None
+        self.good_id: str | None = None      # the checkpoint ``good`` was saved as, if any
         self.good: dict[str, np.ndarray] | None = None     # last checkpoint's arrays
         self.saved_samples: int | None = None   # learner.samples when last saved or loaded
         self.last_tick: float | None = None
@@ -131,11 +132,16 @@ class ModelRuntime:
             # "last good" state it would fail on its first prediction, again and again
             raise CheckpointError(f"model {self.name!r} holds non-finite numbers in "
                                   f"{', '.join(bad[:3])}; not saved")
-        self.good = arrays
+        fallback = self.guard.calm
+        if fallback:
+            # kept in memory before the save, so a full disk does not take the fallback away
+            self.good, self.good_id = arrays, None
         self.saved_samples = self.learner.samples
         if self.store is None:
             return None
         self.checkpoint_id = self.store.save(arrays, self.meta(reason))
+        if fallback:
+            self.good_id = self.checkpoint_id
         return self.checkpoint_id
 
     def learned_since_save(self) -> bool:
@@ -151,7 +157,7 @@ class ModelRuntime:
             return None
         cid, arrays, _meta = found
         self.load_arrays(arrays)
-        self.checkpoint_id = cid
+        self.checkpoint_id = self.good_id = cid
         return cid
 
     def _accept(self, meta: dict) -> str | None:
@@ -172,7 +178,7 @@ class ModelRuntime:
         except StateFileError as exc:
             raise CheckpointError(f"checkpoint {cid} cannot be restored into model {self.name!r}: "
                                   f"{exc}") from None
-        self.checkpoint_id = cid
+        self.checkpoint_id = self.good_id = cid
 
     def restore_good(self) -> str:
         """Fall back to the last good state (guard); a fresh model if there never was one."""
@@ -180,7 +186,9 @@ class ModelRuntime:
             inputs = self.assembler          # readings are facts about the plant, not the model
             self.load_arrays(self.good)
             self.assembler = inputs
-            return self.checkpoint_id or "memory"
+            if self.good_id is not None:
+                self.checkpoint_id = self.good_id    # the published messages name what runs
+            return self.good_id or "memory"
         self.learner = ModelLearner(self.settings)
         self.guard = DivergenceGuard(self.settings.guard)    # a new model has no normal level yet
         self._forget_sample_times()

@@ -294,6 +294,35 @@ def test_runaway_but_finite_loss_trips_as_a_blowup_and_restores(tmp_path) -> Non
     assert p.events("loss_level_changed") == []
 
 
+def test_a_checkpoint_taken_while_the_loss_climbs_is_saved_but_never_fallen_back_to(tmp_path) -> None:
+    # A timer checkpoint can land after a model has begun to run away but before the guard
+    # trips; falling back to it would restore the fault. It is saved (an operator may still
+    # want it), but the guard keeps the state before it.
+    p = Plant(tmp_path, store=True, warmup=50, training={"clip_norm": 1.0})
+    p.feed(600)
+    p.engine.checkpoint_all("timer")
+    calm_id, good = p.rt.checkpoint_id, p.rt.learner.net.params.copy()
+    m = p.settings.models[0]
+    p.engine.apply_settings(dataclasses.replace(p.settings, models=(dataclasses.replace(
+        m, training=dataclasses.replace(m.training, learning_rate=10.0)),)))
+    while p.rt.guard.run == 0 and p.index < 1000:
+        p.feed(1)
+    assert p.rt.guard.run > 0 and not p.events("guard_tripped") and not p.rt.guard.calm
+    p.engine.checkpoint_all("timer")
+    climbing_id = p.rt.checkpoint_id
+    saved = p.events("checkpoint_saved")
+    assert [f["guard_fallback"] for _, f in saved] == [True, False]
+    assert climbing_id != calm_id and p.rt.good_id == calm_id
+    assert climbing_id in [c.id for c in p.rt.store.list()]
+    while not p.events("guard_tripped") and p.index < 1200:
+        p.feed(1)
+    ((_, trip),) = p.events("guard_tripped")
+    assert trip["reason"] == "loss_blowup" and trip["restored"] == calm_id
+    assert np.array_equal(p.rt.learner.net.params, good)
+    p.feed(5)
+    assert {msg["checkpoint"] for msg in p.messages[-5:]} == {calm_id}
+
+
 def test_a_plant_step_change_is_not_treated_as_divergence(tmp_path) -> None:
     # A re-calibrated transmitter: +20 degC on the target (~15x the model's error). The loss
     # jumps far above the bar for good, but the last checkpoint is as wrong as the running
