@@ -124,4 +124,24 @@ class WindowStats:
         e = self.err[:self.count]
         if self.binary:
             return [float(np.mean(e)), float(np.mean(self.hit[:self.count]))]
-        return [float(np.sqrt(np.mean(e * e))), *np.percentile(e, self.percentiles).tolist()]
+        return [float(np.sqrt(np.mean(e * e))), *linear_percentiles(e, self.percentiles)]
+
+
+def linear_percentiles(values: np.ndarray, percentiles: tuple[int, ...]) -> list[float]:
+    """``np.percentile(values, percentiles)`` (its default "linear" method), bit for bit.
+
+    Why not call it: np.percentile costs ~55 us for 500 values and five percentiles, one sort
+    and five interpolations cost ~8. Same steps as numpy's: virtual index (n - 1) * p / 100,
+    then a + (b - a) * g, or b - (b - a) * (1 - g) when g >= 0.5. Finite values only.
+    """
+    s = np.sort(values).tolist()
+    last = len(s) - 1
+    out = []
+    for p in percentiles:
+        v = last * (p / 100)
+        lo = math.floor(v)
+        g = v - lo
+        a, b = s[lo], s[min(lo + 1, last)]
+        d = b - a
+        out.append(b - d * (1 - g) if g >= 0.5 else a + d * g)
+    return out

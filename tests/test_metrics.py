@@ -204,6 +204,20 @@ def test_windowed_regression_statistics_match_outside_formulas() -> None:
                      percentile=str(pct)) == pytest.approx(cuts[pct - 1], rel=1e-9)
 
 
+def test_linear_percentiles_equal_numpys_bit_for_bit() -> None:
+    from daemon.metric_figures import linear_percentiles
+    # numpy's np.percentile, default method "linear", is the reference (outside the project).
+    rng = np.random.default_rng(11)
+    ps = (0, 1, 5, 25, 50, 75, 95, 99, 100)
+    for trial in range(3000):
+        n = int(rng.integers(1, 600))
+        scale = 10.0 ** rng.uniform(-8, 8)
+        values = rng.normal(0.0, scale, n)
+        if trial % 3 == 0:
+            values = np.round(values / scale, 1) * scale      # many ties
+        assert linear_percentiles(values, ps) == np.percentile(values, ps).tolist(), (trial, n)
+
+
 def test_windowed_binary_statistics_match_scikit_learn() -> None:
     m = Metrics(residual_window=100, refresh_every=1)
     mm = m.register_model("seal_leak", "3-16-1 relu", ["flow"], task="binary")
