@@ -145,3 +145,26 @@ def test_state_from_before_the_under_count_still_loads() -> None:
     guard = DivergenceGuard(GuardSettings())
     guard.load_state(old)
     assert (guard.short, guard.long, guard.seen, guard.run, guard.under) == (0.2, 0.1, 500, 3, 500)
+
+
+def test_calm_turns_false_during_a_run_and_after_a_glitch_until_the_short_level_settles() -> None:
+    guard, rng = settled()
+    assert guard.calm
+    guard.observe(guard.bar * 1.5)                    # first sample of a possible run
+    assert guard.run == 1 and not guard.calm
+    guard.observe(float((0.3 * rng.standard_normal()) ** 2))
+    assert guard.run == 0                             # an ordinary sample breaks the run
+    glitch = guard.bar * 1000.0                       # one wild reading: short jumps over the bar
+    guard.observe(glitch)
+    guard.observe(float((0.3 * rng.standard_normal()) ** 2))
+    assert guard.run == 0 and guard.short > guard.bar and not guard.calm
+    for loss in (0.3 * rng.standard_normal(200)) ** 2:
+        guard.observe(float(loss))
+    assert guard.calm                                  # the average decays back under the bar
+
+
+def test_a_young_guard_is_calm_its_bar_means_nothing_yet() -> None:
+    guard = DivergenceGuard(GuardSettings(blowup_factor=K, blowup_samples=N))
+    for _ in range(MIN_SEEN):
+        guard.observe(1e6)
+    assert guard.calm and guard.run == 0
