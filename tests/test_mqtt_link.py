@@ -339,19 +339,30 @@ class CountingSocket:
         self.sock.close()
 
 
+def count_wakes(link: BrokerLink) -> CountingSocket:
+    """Count the wake-ups of paho's thread from now on."""
+    wake = link._client._sockpairW
+    wake.sock = counting = CountingSocket(wake.sock)
+    return counting
+
+
+def start_settled(link: BrokerLink, watcher: Watcher) -> CountingSocket:
+    """Start ``link`` and let paho's thread finish with the "online" status and its
+    acknowledgement: while it reads or writes, a batch is left to it by design. Then count
+    its wake-ups."""
+    link.start()
+    assert link.wait_connected(5)
+    watcher.expect("edgeprop/station-7/status", b"online")
+    assert wait_until(lambda: not link._pending, 5)
+    time.sleep(0.2)
+    return count_wakes(link)
+
+
 def test_a_batch_of_predictions_is_written_by_the_thread_that_queued_it(broker):
     watcher = Watcher(broker.port, ["edgeprop/station-7/#"])
     link = make_link(broker.port, [])
     try:
-        link.start()
-        assert link.wait_connected(5)
-        # let paho's thread finish with the "online" status and its acknowledgement first:
-        # while it reads or writes, the batch is left to it by design
-        watcher.expect("edgeprop/station-7/status", b"online")
-        assert wait_until(lambda: not link._pending, 5)
-        time.sleep(0.2)
-        wake = link._client._sockpairW
-        wake.sock = counting = CountingSocket(wake.sock)
+        counting = start_settled(link, watcher)
         link.publish_batch([(f"edgeprop/station-7/m/{i}", str(i).encode(), 0, False) for i in range(3)])
         # nothing left for paho's thread: it was not woken (its select() waits up to 1 s)
         assert counting.sent == 0 and not link._client._out_packet
@@ -376,8 +387,7 @@ def test_over_tls_paho_thread_writes_the_batch(broker_factory, pki):
     try:
         link.start()
         assert link.wait_connected(5)
-        wake = link._client._sockpairW
-        wake.sock = counting = CountingSocket(wake.sock)
+        counting = count_wakes(link)
         link.publish_batch([("edgeprop/station-7/m", b"1", 0, False), ("edgeprop/station-7/m", b"2", 0, False)])
         assert counting.sent == 1
         assert wait_until(lambda: not link._client._out_packet, 5)
@@ -410,13 +420,7 @@ def test_ready_made_packets_go_out_in_order_with_paho_publishes(broker, protocol
     link = make_link(broker.port, [], protocol=protocol)
     v5 = protocol == "5"
     try:
-        link.start()
-        assert link.wait_connected(5)
-        watcher.expect("edgeprop/station-7/status", b"online")
-        assert wait_until(lambda: not link._pending, 5)
-        time.sleep(0.2)
-        wake = link._client._sockpairW
-        wake.sock = counting = CountingSocket(wake.sock)
+        counting = start_settled(link, watcher)
         first = [("edgeprop/station-7/m/a", b"1"), ("edgeprop/station-7/m/b", b"2")]
         before = link._client._last_msg_out
         link.publish_batch([_packets(first, v5)])
@@ -482,8 +486,7 @@ def test_over_tls_ready_made_packets_are_written_by_paho_thread(broker_factory, 
         sender.start()
         assert reader.wait_connected(5) and sender.wait_connected(5)
         time.sleep(0.3)                                      # the reader's subscription settles
-        wake = sender._client._sockpairW
-        wake.sock = counting = CountingSocket(wake.sock)
+        counting = count_wakes(sender)
         sender.publish_batch([_packets([("edgeprop/station-7/m", b"1"), ("edgeprop/station-7/m", b"2")])])
         assert counting.sent >= 1
         got = received.get_many(10, timeout=5)
