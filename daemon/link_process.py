@@ -24,7 +24,7 @@ from .errors import ConfigError, EdgepropError
 from .link_child import LinkState
 from .logs import LogFn
 from .mqtt_frames import publish_packet
-from .mqtt_link import check_link_settings
+from .broker_access import check_link_settings
 from .settings import BrokerSettings
 
 START_TIMEOUT_S = 30.0       # a small ARM box can take seconds to import paho in the child

@@ -21,7 +21,8 @@ from broker_fixture import make_test_pki
 from daemon.errors import ConfigError
 from daemon.inbound import Inbound, InboundQueue
 from daemon.mqtt_frames import publish_packet
-from daemon.mqtt_link import BrokerLink, read_password_file, tls_context
+from daemon.broker_access import read_password_file, tls_context
+from daemon.mqtt_link import BrokerLink
 from daemon.settings import BrokerSettings, TlsSettings
 
 ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))

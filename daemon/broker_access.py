@@ -1,0 +1,77 @@
+"""What the broker connection needs from disk, checked before anything connects.
+
+The password file (refused when group or others may read it) and the client TLS context.
+The worker checks them before it starts the link process, so a bad password file or
+certificate stops ``edgeprop run`` at once with exit code 2 and a message naming the key;
+the link process reads them again to connect.
+"""
+from __future__ import annotations
+
+import os
+import ssl
+import stat
+
+from daemon.errors import ConfigError
+from daemon.settings import BrokerSettings, TlsSettings
+
+
+def read_password_file(path: str) -> str:
+    """The broker password from ``path``, refusing a file that group or others can access."""
+    try:
+        fd = os.open(path, os.O_RDONLY | os.O_CLOEXEC)
+    except OSError as exc:
+        raise ConfigError([f"broker.password_file: cannot open {path!r}: {exc.strerror}"]) from exc
+    with os.fdopen(fd, "rb") as handle:
+        mode = stat.S_IMODE(os.fstat(handle.fileno()).st_mode)
+        if mode & 0o077:
+            raise ConfigError([
+                f"broker.password_file: {path!r} has mode {mode:04o}, so group or others may "
+                f"read the broker password; run `chmod 600 {path}` (owner read/write only)"])
+        data = handle.read()
+    try:
+        text = data.decode("utf-8")
+    except UnicodeDecodeError as exc:
+        raise ConfigError([f"broker.password_file: {path!r} is not UTF-8 text"]) from exc
+    for ending in ("\r\n", "\n"):          # editors add one trailing newline; strip just that
+        if text.endswith(ending):
+            return text[: -len(ending)]
+    return text
+
+
+def tls_context(tls: TlsSettings) -> ssl.SSLContext:
+    """A client TLS context: TLS 1.2 or newer, broker certificate and host name verified."""
+    try:
+        context = ssl.create_default_context(ssl.Purpose.SERVER_AUTH, cafile=tls.ca_file)
+    except (OSError, ssl.SSLError) as exc:
+        raise ConfigError([f"broker.tls.ca_file: cannot load CA certificates from {tls.ca_file!r}: {exc}"]) from exc
+    context.minimum_version = ssl.TLSVersion.TLSv1_2
+    if tls.key_file and not tls.cert_file:
+        raise ConfigError(["broker.tls.key_file is set but broker.tls.cert_file is not; give both or neither"])
+    if tls.cert_file:
+        try:
+            context.load_cert_chain(tls.cert_file, tls.key_file)
+        except (OSError, ssl.SSLError) as exc:
+            raise ConfigError([
+                f"broker.tls.cert_file/key_file: cannot load client certificate {tls.cert_file!r} "
+                f"with key {tls.key_file or tls.cert_file!r}: {exc}"]) from exc
+    return context
+
+
+def check_protocol_and_user(settings: BrokerSettings) -> None:
+    if settings.protocol not in ("3.1.1", "5"):
+        raise ConfigError([f"broker.protocol: {settings.protocol!r} is not supported; use '3.1.1' or '5'"])
+    if settings.password_file and not settings.username:
+        raise ConfigError(["broker.password_file is set but broker.username is not; set both"])
+
+
+def check_link_settings(settings: BrokerSettings) -> None:
+    """Raise ConfigError for broker settings no connection could use (protocol, password, TLS files).
+
+    Run by the daemon before it starts the process that holds the connection, so a bad
+    password file or certificate stops ``edgeprop run`` at once with exit code 2.
+    """
+    check_protocol_and_user(settings)
+    if settings.password_file:
+        read_password_file(settings.password_file)
+    if settings.tls is not None:
+        tls_context(settings.tls)
