@@ -42,6 +42,8 @@ for _p in (ROOT, HERE):
     if _p not in sys.path:
         sys.path.insert(0, _p)
 
+from daemon.mqtt_frames import write_varint  # noqa: E402  (after the path is set)
+
 INPUTS = ("speed", "current", "ambient", "suction")
 TARGET = "bearing_temp"
 TOPICS = [f"bench/p1/{name}" for name in (*INPUTS, TARGET)]
@@ -75,12 +77,7 @@ def _mqtt_string(text: str) -> bytes:
 
 def _mqtt_packet(first_byte: int, body: bytes) -> bytes:
     """One MQTT packet: fixed header (type, remaining length as a varint) and body."""
-    head, n = bytearray([first_byte]), len(body)
-    while True:
-        n, digit = n >> 7, n & 0x7F
-        head.append(digit | (0x80 if n else 0))
-        if not n:
-            return bytes(head) + body
+    return bytes((first_byte,)) + write_varint(len(body)) + body
 
 
 class RawPublisher:
