@@ -206,6 +206,7 @@ class Engine:
             self.checkpoint_model(rt, reason)
 
     def checkpoint_model(self, rt: ModelRuntime, reason: str) -> str | None:
+        began = time.perf_counter()      # wall time of the save: slow flash shows up in the log
         try:
             cid = rt.checkpoint(reason)
         except (CheckpointError, OSError) as exc:
@@ -215,7 +216,8 @@ class Engine:
             return None
         if cid is not None:
             self.log("info", "checkpoint_saved", model=rt.name, id=cid, reason=reason,
-                     samples=rt.learner.samples, guard_fallback=rt.good_id == cid)
+                     samples=rt.learner.samples, guard_fallback=rt.good_id == cid,
+                     ms=f"{1000 * (time.perf_counter() - began):.1f}")
             if self.metrics is not None:
                 self.metrics.checkpoint_saved(rt.name, cid, self.clock())
         return cid

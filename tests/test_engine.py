@@ -454,6 +454,8 @@ def test_timer_saves_a_model_only_after_it_learned_something(tmp_path) -> None:
     assert [f["reason"] for _, f in p.events("checkpoint_saved")] == ["timer", "timer"]
     p.engine.checkpoint_all("shutdown")        # on stop (and on request) it always saves
     assert len(p.events("checkpoint_saved")) == 3
+    # each line says how long the save took (wall time; a slow card shows up here)
+    assert all(0.0 <= float(f["ms"]) < 10_000 for _, f in p.events("checkpoint_saved"))
 
 
 # -- the published JSON, built without json.dumps on the hot path ------------------------------

@@ -144,7 +144,10 @@ def test_flood_at_ten_times_capacity_is_bounded_counted_and_drains(bounded_broke
     # A model that makes the worker, not paho's reader (~9k msg/s, FIELD-NOTES), the bottleneck:
     # then the overflow happens in the daemon's own queue, where it is counted. (With a worker
     # as fast as the reader, the backlog would sit in the broker, which drops it silently.)
-    model = model_config(warmup=20, hidden=(64, 64), training={"steps_per_sample": 2})
+    # Slow enough, too, that ten times its capacity stays within one publisher process on a
+    # busy 2-core box: a 64x64 model with 2 steps measured 14,760 msg/s on a CI machine, whose
+    # publisher then reached only 88,876 of the 147,595 msg/s asked. This one: ~3,500 here.
+    model = model_config(warmup=20, hidden=(128, 128), training={"steps_per_sample": 4})
     cfg = write_config(tmp_path, broker, [model], metrics={"listen": "127.0.0.1:0"})
     daemon = Daemon(cfg)
     probe = None

@@ -45,10 +45,21 @@ def _one_reading(probe: Probe, speed: float, current: float, temp: float) -> Non
 RATE = 100.0          # targets per second from the paced publisher
 EVERY_S = 0.2         # checkpoint timer
 KILLS = 30
-# Allowance beyond every_s for the batch in hand when the timer falls due and for a save in
-# progress at the kill (a few ms each here; a judgement for a loaded 2-core box, no source).
-GRACE_S = 0.05
+# Allowance beyond every_s for the batch in hand when the timer falls due and for the box
+# stalling the daemon (a judgement for a loaded 2-core box, no source; 0.05 s failed once in
+# CI: 24 samples redone, 20 allowed). Still strict enough: with the daemon's timer set to
+# 0.4 s the test failed 3 runs of 3, at the 2nd, 12th and 11th kill (34 redone, 30 allowed).
+# Each life lasts 0.3-1 s after its first prediction so that it spans several timer periods.
+# A save in progress at the kill is allowed for separately, by the longest save the daemons
+# logged (``ms=``): two fsyncs, up to 140 ms here now and then.
+GRACE_S = 0.1
 WARMUP = 50           # model_config's default warmup_samples
+
+
+def _longest_save_s(text: str) -> float:
+    """The longest checkpoint save in a daemon log, in seconds (0 when it saved nothing)."""
+    return max((float(ms) / 1000 for ms in re.findall(r"event=checkpoint_saved .* ms=([\d.]+)", text)),
+               default=0.0)
 
 
 def test_sigkill_at_random_moments_always_restarts_from_a_valid_checkpoint(broker, tmp_path):
@@ -56,17 +67,18 @@ def test_sigkill_at_random_moments_always_restarts_from_a_valid_checkpoint(broke
 
     "At most one checkpoint interval lost" is checked in samples: the samples redone after a
     restart (last published before the kill minus the restored count) may not exceed the
-    predictions the killed daemon published in the last every_s + GRACE_S seconds before its
-    kill, as timed by the probe. That is the work one interval holds at the rate the daemon
-    actually ran (about RATE * every_s = 20 here; more if the box stalled it and it then
-    caught up). A timer that saved less often than every_s would fail it.
+    predictions the killed daemon published in the last every_s + GRACE_S + (longest save so
+    far) seconds before its kill, as timed by the probe. That is the work one interval and one
+    save in progress hold at the rate the daemon actually ran (about RATE * every_s = 20 here;
+    more if the box stalled it and it then caught up). A timer that saved less often than
+    every_s would fail it.
     """
     cfg = write_config(tmp_path, broker, checkpoints={"every_s": EVERY_S, "keep": 5})
     state = str(tmp_path / "state")
     probe = Probe(broker)
     feed = PacedPublisher(probe, RATE)
     rng = np.random.default_rng(20261202)
-    redone, allowed, mid_save = [], [], 0
+    redone, allowed, mid_save, save_s = [], [], 0, 0.0
     last_before = window = None
     try:
         for i in range(KILLS):
@@ -93,22 +105,24 @@ def test_sigkill_at_random_moments_always_restarts_from_a_valid_checkpoint(broke
                     redone.append(last_before - restored)
                     allowed.append(window)
                     assert redone[-1] <= window, (i, last_before, restored, window)
-                time.sleep(float(rng.uniform(0.0, 0.5)))
+                time.sleep(float(rng.uniform(0.3, 1.0)))
             finally:
                 killed_at = time.monotonic()
                 d.proc.kill()
                 d.proc.wait(5)
                 d.kill()
+                save_s = max(save_s, _longest_save_s(d.log()))
             mid_save += any(n.endswith(".tmp") for n in os.listdir(os.path.join(state, "m1")))
             time.sleep(0.1)            # let the broker hand over what the daemon sent before dying
             last_before = json.loads(probe.payloads(TOPIC)[-1])["samples"]
-            window = probe.received_since(TOPIC, killed_at - EVERY_S - GRACE_S)
+            window = probe.received_since(TOPIC, killed_at - EVERY_S - GRACE_S - save_s)
     finally:
         feed.stop()
         probe.close()
     print(f"\n{KILLS} kills at {RATE:g} samples/s, checkpoint every {EVERY_S} s; samples redone "
           f"after restart: max {max(redone)}, mean {np.mean(redone):.1f}; allowed: "
-          f"{min(allowed)}..{max(allowed)}; kills that left a temp file: {mid_save}")
+          f"{min(allowed)}..{max(allowed)}; kills that left a temp file: {mid_save}; "
+          f"longest save {1000 * save_s:.1f} ms")
     assert len(redone) == KILLS - 1
 
 
