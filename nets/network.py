@@ -104,13 +104,9 @@ class Network:
         return np.zeros(n, self.dtype), np.zeros(n, self.dtype)
 
     def _views(self, flat: np.ndarray) -> tuple[list[np.ndarray], list[np.ndarray]]:
-        weights, biases, at = [], [], 0
-        for fan_in, fan_out in zip(self.sizes[:-1], self.sizes[1:]):
-            weights.append(flat[at:at + fan_in * fan_out].reshape(fan_in, fan_out))
-            at += fan_in * fan_out
-            biases.append(flat[at:at + fan_out])
-            at += fan_out
-        return weights, biases
+        """Weights (fan_in, fan_out) and biases (fan_out,) per layer: rows of ``_blocks``."""
+        blocks = self._blocks(flat)
+        return [b[:-1] for b in blocks], [b[-1] for b in blocks]
 
     def _blocks(self, flat: np.ndarray) -> list[np.ndarray]:
         """Each layer's weights with its bias as one more row: views into ``flat``."""
