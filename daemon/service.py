@@ -50,11 +50,20 @@ class Service:
         self.clock = clock
         self.env = dict(os.environ if env is None else env)
         self.flags = Flags()
-        self.metrics = Metrics(node=settings.node, queue_capacity=settings.broker.queue_size)
-        self.engine = Engine(settings, self._publish, log, self.metrics, clock,
-                             stores=self._stores(settings))
         self.link: LinkProcess | None = None
-        self.control: ControlServer | None = None
+        # First of all: a second `edgeprop run` on the same state directory must stop here,
+        # before it removes the running daemon's half-written checkpoint as a crash leftover
+        # or connects with the same client id (which the broker answers by dropping the other).
+        ensure_private_dir(settings.state_dir)
+        self.control: ControlServer | None = ControlServer(settings.control_socket, wake=self._wake,
+                                                           log=log)
+        try:
+            self.metrics = Metrics(node=settings.node, queue_capacity=settings.broker.queue_size)
+            self.engine = Engine(settings, self._publish, log, self.metrics, clock,
+                                 stores=self._stores(settings))
+        except BaseException:
+            self.close_control()
+            raise
         self.http = None
         self._ready = False
         self._started = time.monotonic()
@@ -62,10 +71,19 @@ class Service:
         self._last_ping = 0.0
         self.exit_code = 0
 
+    def _wake(self) -> None:
+        if self.link is not None:
+            self.link.wake()
+
+    def close_control(self) -> None:
+        """Remove the control socket (also when start-up fails, so a retry is not refused)."""
+        if self.control is not None:
+            self.control.close()
+            self.control = None
+
     def _stores(self, settings: Settings) -> dict[str, CheckpointStore]:
-        # The state dir too, not only each model's: whoever may write in it can swap a model's
-        # directory for one of their own, or stand in for the control socket kept there.
-        ensure_private_dir(settings.state_dir)
+        # The state dir is private too (ensured in __init__), not only each model's: whoever
+        # may write in it can swap a model's directory or stand in for the control socket.
         return {m.name: CheckpointStore(os.path.join(settings.state_dir, m.name),
                                         settings.checkpoints.keep, clock=self.clock, log=self.log)
                 for m in settings.models}
@@ -77,9 +95,12 @@ class Service:
         topics = self.engine.routes.topics
         self.link = LinkProcess(self.settings.broker, self.settings.node, topics, log=self.log,
                                 log_level=self.settings.logging.level)
-        self.link.start()          # first: a refused password file or certificate ends it here
-        self.control = ControlServer(self.settings.control_socket, wake=self.link.wake, log=self.log)
-        self.http = serve(self.settings.metrics, self.metrics.registry)
+        self.link.start()          # a refused password file or certificate ends it here
+        try:
+            self.http = serve(self.settings.metrics, self.metrics.registry)
+        except BaseException:
+            self.link.stop()       # e.g. the metrics port is taken: leave the broker cleanly
+            raise
         self._install_signals()
         worker = threading.Thread(target=self._worker, name="edgeprop-worker", daemon=True)
         self.log("info", "started", node=self.settings.node, models=len(self.engine.models),
@@ -203,8 +224,7 @@ class Service:
         self.engine.checkpoint_all("shutdown")
         if self.link is not None:
             self.link.stop(timeout=min(2.0, STOP_DEADLINE_S))
-        if self.control is not None:
-            self.control.close()
+        self.close_control()
         if self.http is not None:
             try:
                 self.http.shutdown()
@@ -251,8 +271,10 @@ def run_service(config_path: str, log: Log) -> int:
             log("error", "config_problem", detail=p)
         return 2
     log.set_level(settings.logging.level)
+    service = None
     try:
-        return Service(config_path, settings, log).run()
+        service = Service(config_path, settings, log)
+        return service.run()
     except ConfigError as exc:
         for p in exc.problems:
             log("error", "config_problem", detail=p)
@@ -260,3 +282,6 @@ def run_service(config_path: str, log: Log) -> int:
     except (EdgepropError, OSError) as exc:
         log("error", "start_failed", error=str(exc))
         return 1
+    finally:
+        if service is not None:
+            service.close_control()

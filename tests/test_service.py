@@ -547,3 +547,32 @@ def test_signal_stops_cleanly_within_5_s_under_load(tmp_path, broker, sig):
     assert re.search(r"event=checkpoint_saved .*reason=shutdown", log), log
     assert daemon.stdout() == ""                              # logs go to stderr only
     assert_clean_log(log)
+
+
+def test_second_daemon_on_the_same_state_leaves_the_first_alone(tmp_path, broker):
+    """A second ``edgeprop run`` (an operator's manual start beside the service) is refused
+    before it touches the broker or the state directory: the broker would drop the first
+    daemon's connection for the same client id, and the second one's start-up tidying would
+    delete the first one's checkpoint in flight as a crash leftover."""
+    daemon, probe = start(tmp_path, broker, [model_config(warmup=5)])
+    model_dir = tmp_path / "state" / "m1"
+    in_flight = model_dir / ".20261203T000000Z-000001.npz.tmp"
+    try:
+        model_dir.mkdir(exist_ok=True)
+        in_flight.write_bytes(b"half a checkpoint")
+        second = Daemon(daemon.config)
+        assert second.proc.wait(20) == 1
+        second_log = second.log()
+        second.kill()
+        time.sleep(1.0)                     # a dropped connection would be logged by now
+        log = daemon.log()
+        status = daemon.status()
+        probe.publish_many(list(bearing_stream(10, seed=8)))
+        predictions(probe, 5)
+    finally:
+        probe.close()
+        daemon.stop()
+    assert "another edgeprop is running" in second_log, second_log
+    assert "broker_connection_lost" not in log and status["broker_connected"] is True
+    assert in_flight.read_bytes() == b"half a checkpoint"
+    assert_clean_log(second_log)
