@@ -25,7 +25,10 @@ from daemon.errors import CheckpointError
 from nets.store import StateFileError, read_state, state_bytes
 
 LogFn = Callable[..., None]
-Accept = Callable[[dict], Optional[str]]
+# Loads a checkpoint's (meta, arrays) into a model; returns why it belongs to other settings
+# (nothing loaded) or None, and raises StateFileError when its contents are unusable.
+LoadIfFits = Callable[[dict, dict], Optional[str]]
+Fits = Callable[[dict], Optional[str]]         # meta -> why it belongs to other settings, or None
 
 ID_RE = re.compile(r"^(\d{8}T\d{6}Z)-(\d{6,})$")
 PINS_FILE = "pins.json"
@@ -44,6 +47,8 @@ REASON_TEXT = {
     "shape": "the arrays do not match the shapes in the header",
     "id": "the id inside the file differs from its file name",
     "io": "the file could not be read",
+    "content": "the arrays do not fit together (a damaged or hand-edited file)",
+    "non_finite": "the file holds non-finite numbers (NaN or infinity)",
 }
 
 
@@ -126,7 +131,10 @@ class CheckpointStore:
         self.log = log
         self.skipped_corrupt = 0                 # running total, for the metrics counter
         self.mismatches: list[tuple[str, str]] = []   # (id, reason) from the last load_newest
-        self._infos: dict[str, tuple[tuple[int, int, int], CheckpointInfo]] = {}
+        # Set by the model's runtime: checkpoints it refuses (saved for another network or
+        # optimiser) are never pruned, so going back to the old settings finds them again.
+        self.fits: Fits | None = None
+        self._infos: dict[str, tuple[tuple[int, int, int], CheckpointInfo, dict]] = {}
         if tidy:
             ensure_private_dir(self.directory)
             self._remove_leftovers()
@@ -196,7 +204,9 @@ class CheckpointStore:
         except CheckpointError as exc:
             self.log("error", "checkpoint_prune_skipped", reason=exc)
             return
-        ids = self._ids()
+        # Only checkpoints the running model could load count towards ``keep`` and are
+        # deleted: damaged files stay as evidence, other settings' ones stay to go back to.
+        ids = [cid for cid in self._ids() if self._usable_here(cid)]
         keep.update(ids[-self.keep:])
         keep.add(newest)
         for cid in ids:
@@ -229,10 +239,19 @@ class CheckpointStore:
                if n.endswith(".npz") and ID_RE.match(n[:-4])]
         return sorted(ids, key=_id_key)
 
+    def _usable_here(self, cid: str) -> bool:
+        found = self._info_and_meta(cid)
+        if found is None or not found[0].valid:
+            return False
+        return self.fits is None or self.fits(found[1]) is None
+
     def _read(self, cid: str) -> tuple[dict[str, np.ndarray], dict[str, Any]]:
         """Read and verify one file; StateFileError says why it is unusable."""
+        path = self._path(cid)
+        if os.path.isdir(path):
+            raise StateFileError("io", f"{path} is a directory, not a checkpoint file")
         try:
-            arrays, header = read_state(self._path(cid))
+            arrays, header = read_state(path)
         except OSError as exc:
             raise StateFileError("io", str(exc)) from None
         if header.get("id", cid) != cid:
@@ -258,18 +277,18 @@ class CheckpointStore:
         except StateFileError as exc:
             raise CheckpointError(f"checkpoint {cid} is unusable: {self._problem(exc)}") from None
 
-    def load_newest(self, accept: Accept) -> Optional[tuple[str, dict[str, np.ndarray], dict]]:
-        """Newest checkpoint that reads cleanly and that ``accept`` does not refuse."""
+    def load_newest(self, load_if_fits: LoadIfFits) -> Optional[tuple[str, dict[str, np.ndarray], dict]]:
+        """Newest checkpoint that reads cleanly and that ``load_if_fits`` loaded."""
         self.mismatches = []
         for cid in reversed(self._ids()):
             try:
                 arrays, meta = self._read(cid)
+                refusal = load_if_fits(meta, arrays)
             except StateFileError as exc:
                 self.skipped_corrupt += 1
                 self.log("warning", "checkpoint_skipped", id=cid, reason=exc.reason,
                          detail=self._problem(exc), path=self._path(cid))
                 continue
-            refusal = accept(meta)
             if refusal:
                 self.mismatches.append((cid, refusal))
                 self.log("warning", "checkpoint_mismatch", id=cid, reason=refusal)
@@ -288,6 +307,11 @@ class CheckpointStore:
         return out
 
     def _info(self, cid: str) -> Optional[CheckpointInfo]:
+        found = self._info_and_meta(cid)
+        return found[0] if found else None
+
+    def _info_and_meta(self, cid: str) -> Optional[tuple[CheckpointInfo, dict]]:
+        """The listing entry and header of one file, read once per version of the file."""
         path = self._path(cid)
         try:
             st = os.stat(path)
@@ -296,7 +320,8 @@ class CheckpointStore:
         sig = (st.st_mtime_ns, st.st_size, st.st_ino)
         cached = self._infos.get(cid)
         if cached and cached[0] == sig:
-            return cached[1]
+            return cached[1], cached[2]
+        meta: dict = {}
         try:
             _, meta = self._read(cid)
             info = CheckpointInfo(cid, _float(meta.get("saved_at")), _int(meta.get("samples")),
@@ -304,8 +329,8 @@ class CheckpointStore:
         except StateFileError as exc:
             info = CheckpointInfo(cid, _utc_epoch(_id_key(cid)[0]), None, None, False, False,
                                   self._problem(exc), path)
-        self._infos[cid] = (sig, info)
-        return info
+        self._infos[cid] = (sig, info, meta)
+        return info, meta
 
     def newest_id(self) -> Optional[str]:
         """Id of the newest checkpoint file (usable or not), or None."""
@@ -313,9 +338,10 @@ class CheckpointStore:
         return ids[-1] if ids else None
 
     def id_before(self, t: float) -> Optional[str]:
-        """Newest usable checkpoint saved before time ``t`` (epoch s), or None."""
+        """Newest checkpoint the model can load that was saved before time ``t`` (epoch s)."""
         for info in self.list():
-            if info.valid and info.saved_at is not None and info.saved_at < t:
+            if info.valid and info.saved_at is not None and info.saved_at < t \
+                    and self._usable_here(info.id):
                 return info.id
         return None
 

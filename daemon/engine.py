@@ -186,7 +186,7 @@ class Engine:
             # A model that learned nothing since its last save is not written again: an idle
             # plant would otherwise wear the flash of a small box with identical files.
             for rt in self.models.values():
-                if rt.learned_since_save():
+                if rt.unsaved_changes():
                     self.checkpoint_model(rt, "timer")
 
     def _predict_only(self, rt: ModelRuntime, now: float) -> None:
@@ -204,6 +204,16 @@ class Engine:
         """Save every model; a failure is counted and logged, learning goes on."""
         for rt in self.models.values():
             self.checkpoint_model(rt, reason)
+
+    def checkpoint_changed(self, reason: str) -> None:
+        """Save every model whose state differs from its newest checkpoint (at shutdown:
+        restarts of an idle daemon must not fill ``keep`` with copies of one state)."""
+        for rt in self.models.values():
+            if rt.unsaved_changes():
+                self.checkpoint_model(rt, reason)
+            else:
+                self.log("debug", "checkpoint_not_needed", model=rt.name, reason=reason,
+                         newest=rt.checkpoint_id, samples=rt.learner.samples)
 
     def checkpoint_model(self, rt: ModelRuntime, reason: str) -> str | None:
         began = time.perf_counter()      # wall time of the save: slow flash shows up in the log

@@ -44,7 +44,9 @@ class ModelRuntime:
         self.checkpoint_id: str | None = None
         self.good_id: str | None = None      # the checkpoint ``good`` was saved as, if any
         self.good: dict[str, np.ndarray] | None = None     # last checkpoint's arrays
-        self.saved_samples: int | None = None   # learner.samples when last saved or loaded
+        # learner.samples when the state last equalled the newest checkpoint on disk (saved,
+        # or loaded as the newest at start); None after a rollback or restore of another state
+        self.saved_samples: int | None = None
         self.last_tick: float | None = None
         self.lag0 = self._lag0_columns(settings)
         self.lag0_cols: list[int] = self.lag0.tolist()     # the same, for plain-list indexing
@@ -94,7 +96,12 @@ class ModelRuntime:
         return arrays
 
     def load_arrays(self, arrays: dict[str, np.ndarray]) -> None:
-        """Restore every part; raises StateFileError('shape') when arrays do not fit."""
+        """Restore every part; raises StateFileError when the arrays do not fit together or
+        hold a non-finite number (such a state would fail on its first prediction, and as
+        the guard's fallback it would be restored again and again)."""
+        bad = _non_finite(arrays)
+        if bad:
+            raise StateFileError("non_finite", f"non-finite numbers in {', '.join(bad[:3])}")
         fresh = ModelLearner(self.settings)
         try:
             rest = fresh.load_arrays(dict(arrays))
@@ -105,8 +112,10 @@ class ModelRuntime:
             for name, obj in parts.items():
                 if name in rest:
                     obj.load_state(rest[name])
-        except (KeyError, ValueError, TypeError, SyntaxError, CheckpointError) as exc:
-            raise StateFileError("shape", f"checkpoint does not fit model {self.name!r}: {exc}") from None
+        except KeyError as exc:
+            raise StateFileError("content", f"the array {exc} is missing") from None
+        except (ValueError, TypeError, SyntaxError, CheckpointError) as exc:
+            raise StateFileError("content", f"checkpoint does not fit model {self.name!r}: {exc}") from None
         self.learner = fresh
         self.assembler, self.drift = parts["align"], parts["drift"]
         self.interval, self.guard = parts["interval"], parts["guard"]
@@ -118,15 +127,14 @@ class ModelRuntime:
         return {"model": self.name, "samples": self.learner.samples,
                 "loss": self.guard.long if self.guard.seen else None,
                 "learning_rate": self.learner.learning_rate, "reason": reason,
-                **self.learner.header()}
+                "optimizer": self.settings.training.optimizer, **self.learner.header()}
 
     def checkpoint(self, reason: str) -> str | None:
         """Save now; returns the new id (None without a store). Raises CheckpointError."""
         if not self.learner.weights_finite():
             raise CheckpointError(f"model {self.name!r} has non-finite weights; not saved")
         arrays = self.state_arrays()
-        bad = sorted(k for k, a in arrays.items()
-                     if a.dtype.kind == "f" and not np.isfinite(a).all())
+        bad = _non_finite(arrays)
         if bad:
             # e.g. a scaler overflowed on a wild reading during warm-up: as the guard's
             # "last good" state it would fail on its first prediction, again and again
@@ -144,28 +152,48 @@ class ModelRuntime:
             self.good_id = self.checkpoint_id
         return self.checkpoint_id
 
-    def learned_since_save(self) -> bool:
-        """True when the model learned from a reading since its last save or load."""
+    def unsaved_changes(self) -> bool:
+        """True when the state differs from the newest checkpoint: it learned since the last
+        save, or another state was restored. A model that has seen nothing has nothing to keep;
+        saving it anyway (each idle restart) would push real rollback points out of ``keep``."""
+        if self.learner.samples == 0:
+            return False
         return self.saved_samples != self.learner.samples
 
     def restore_newest(self) -> str | None:
         """Load the newest checkpoint that fits; None when there is none."""
         if self.store is None:
             return None
-        found = self.store.load_newest(self._accept)
+        self.store.fits = self.refusal
+        found = self.store.load_newest(self._load_if_fits)
         if found is None:
             return None
-        cid, arrays, _meta = found
-        self.load_arrays(arrays)
-        self.checkpoint_id = self.good_id = cid
-        return cid
+        self.checkpoint_id = self.good_id = found[0]
+        return found[0]
 
-    def _accept(self, meta: dict) -> str | None:
+    def refusal(self, meta: dict, arrays: dict | None = None) -> str | None:
+        """Why a checkpoint was saved for another model shape (None: it fits).
+
+        The network's shape and the optimiser (its state has other arrays) come from the
+        config: a checkpoint refused here is not damaged, it belongs to other settings.
+        """
         try:
             self.learner.check_header(meta)
         except StateFileError as exc:
             return str(exc)
+        saved = meta.get("optimizer") or _optimizer_of(arrays or {})
+        configured = self.settings.training.optimizer
+        if saved is not None and saved != configured:
+            return f"saved with training.optimizer {saved!r}, configured {configured!r}"
         return None
+
+    def _load_if_fits(self, meta: dict, arrays: dict[str, np.ndarray]) -> str | None:
+        """Load the checkpoint unless it belongs to other settings; raises StateFileError
+        when its contents are unusable (non-finite numbers, arrays that do not fit together)."""
+        refusal = self.refusal(meta, arrays)
+        if refusal is None:
+            self.load_arrays(arrays)
+        return refusal
 
     def restore(self, cid: str) -> None:
         """Load a named checkpoint (rollback)."""
@@ -173,12 +201,14 @@ class ModelRuntime:
             raise CheckpointError("no checkpoint store in this mode")
         arrays, meta = self.store.load(cid)
         try:
-            self.learner.check_header(meta)
-            self.load_arrays(arrays)
+            refusal = self._load_if_fits(meta, arrays)
         except StateFileError as exc:
+            refusal = str(exc)
+        if refusal is not None:
             raise CheckpointError(f"checkpoint {cid} cannot be restored into model {self.name!r}: "
-                                  f"{exc}") from None
+                                  f"{refusal}")
         self.checkpoint_id = self.good_id = cid
+        self.saved_samples = None          # not the newest on disk: the next save keeps it
 
     def restore_good(self) -> str:
         """Fall back to the last good state (guard); a fresh model if there never was one."""
@@ -188,8 +218,10 @@ class ModelRuntime:
             self.assembler = inputs
             if self.good_id is not None:
                 self.checkpoint_id = self.good_id    # the published messages name what runs
+            self.saved_samples = None
             return self.good_id or "memory"
         self.learner = ModelLearner(self.settings)
+        self.saved_samples = None
         self.guard = DivergenceGuard(self.settings.guard)    # a new model has no normal level yet
         self._forget_sample_times()
         return "fresh"
@@ -231,6 +263,20 @@ def store_for(state_dir: str, model: ModelSettings, keep: int, log: Callable[...
     """The checkpoint store of one model: ``<state_dir>/<model>/``."""
     import os
     return CheckpointStore(os.path.join(state_dir, model.name), keep, clock=clock, log=log)
+
+
+def _non_finite(arrays: dict[str, np.ndarray]) -> list[str]:
+    """Names of the float arrays holding NaN or infinity, sorted."""
+    return sorted(k for k, a in arrays.items() if a.dtype.kind == "f" and not np.isfinite(a).all())
+
+
+def _optimizer_of(arrays: dict) -> str | None:
+    """The optimiser a checkpoint written before its header named one was saved with."""
+    if "opt/m" in arrays:
+        return "adam"
+    if "opt/velocity" in arrays:
+        return "sgd"
+    return None
 
 
 __all__ = ["ModelRuntime", "store_for", "split_parts"]

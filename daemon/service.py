@@ -221,7 +221,7 @@ class Service:
     def _shutdown(self) -> None:
         sdnotify.notify("STOPPING=1", self.env)
         self.log("info", "stopping")
-        self.engine.checkpoint_all("shutdown")
+        self.engine.checkpoint_changed("shutdown")
         if self.link is not None:
             self.link.stop(timeout=min(2.0, STOP_DEADLINE_S))
         self.close_control()

@@ -144,7 +144,7 @@ def test_truncated_and_bit_flipped_files_are_skipped(tmp_path):
     path = os.path.join(s.directory, cut + ".npz")
     os.truncate(path, os.path.getsize(path) // 2)
 
-    found = s.load_newest(lambda meta: None)
+    found = s.load_newest(lambda meta, arrays: None)
     assert found is not None
     cid, arrays, meta = found
     assert cid == good and meta["samples"] == 100
@@ -170,10 +170,22 @@ def test_checksum_mismatch_is_skipped(tmp_path):
         members = {k: npz[k] for k in npz.files}
     members["net/w"] = members["net/w"] + 1.0
     np.savez(fake, **members)
-    assert s.load_newest(lambda meta: None)[0] == good
+    assert s.load_newest(lambda meta, arrays: None)[0] == good
     assert s.skipped_corrupt == 1
     with pytest.raises(CheckpointError, match="checksum"):
         s.load(bad)
+
+
+def test_a_directory_in_place_of_a_checkpoint_is_called_a_directory(tmp_path):
+    s = store(tmp_path)
+    good = s.save(state(0), {"samples": 1})
+    odd = "20261201T101501Z-000001"
+    os.mkdir(os.path.join(s.directory, odd + ".npz"))
+    assert s.load_newest(lambda meta, arrays: None)[0] == good
+    with pytest.raises(CheckpointError, match="is a directory, not a checkpoint file"):
+        s.load(odd)
+    (listed,) = [c for c in s.list() if c.id == odd]
+    assert not listed.valid and "is a directory" in listed.problem
 
 
 def test_pickled_object_arrays_are_refused(tmp_path):
@@ -188,7 +200,7 @@ def test_pickled_object_arrays_are_refused(tmp_path):
              bad=np.array([{"a": 1}], dtype=object))
     with pytest.raises(CheckpointError, match="pickled"):
         s.load(evil)
-    assert s.load_newest(lambda meta: None)[0] == good
+    assert s.load_newest(lambda meta, arrays: None)[0] == good
 
 
 def test_architecture_mismatch_is_reported_and_skipped(tmp_path):
@@ -198,7 +210,7 @@ def test_architecture_mismatch_is_reported_and_skipped(tmp_path):
     clock.t += 1
     new = s.save(state(1), {"architecture": "3-32-1"})
 
-    def accept(meta):
+    def accept(meta, arrays):
         arch = meta.get("architecture")
         return None if arch == "4-32-32-1" else f"architecture {arch} differs from config 4-32-32-1"
 
@@ -206,7 +218,7 @@ def test_architecture_mismatch_is_reported_and_skipped(tmp_path):
     assert cid == old
     assert s.mismatches == [(new, "architecture 3-32-1 differs from config 4-32-32-1")]
     assert s.skipped_corrupt == 0
-    assert s.load_newest(lambda meta: "never") is None
+    assert s.load_newest(lambda meta, arrays: "never") is None
     assert [m[0] for m in s.mismatches] == [new, old]
 
 

@@ -33,9 +33,11 @@ def strict_json(body: bytes) -> dict:
 class Plant:
     """One model on the test pump (daemon_proc.bearing_stream) behind an Engine, fake clock."""
 
-    def __init__(self, tmp_path, store: bool = False, seed: int = 1, **model: object) -> None:
+    def __init__(self, tmp_path, store: bool = False, seed: int = 1, keep: int = 100,
+                 checkpoints: dict | None = None, **model: object) -> None:
         raw = {"node": "station-7", "state_dir": str(tmp_path / "state"),
-               "metrics": {"listen": None}, "models": [model_config(**model)]}
+               "metrics": {"listen": None}, "models": [model_config(**model)],
+               "checkpoints": checkpoints or {}}
         self.settings = parse_config(raw)
         self.now = T0
         self.index = 0                  # targets handed to the engine so far
@@ -44,7 +46,7 @@ class Plant:
         self.metrics = Metrics()
         stores = None
         if store:
-            stores = {"m1": CheckpointStore(str(tmp_path / "state" / "m1"), keep=100,
+            stores = {"m1": CheckpointStore(str(tmp_path / "state" / "m1"), keep=keep,
                                             clock=lambda: self.now, log=lambda *a, **k: None)}
         self.engine = Engine(self.settings, self._publish, self._log, metrics=self.metrics,
                              clock=lambda: self.now, stores=stores)

@@ -576,3 +576,25 @@ def test_second_daemon_on_the_same_state_leaves_the_first_alone(tmp_path, broker
     assert "broker_connection_lost" not in log and status["broker_connected"] is True
     assert in_flight.read_bytes() == b"half a checkpoint"
     assert_clean_log(second_log)
+
+
+def test_idle_restarts_leave_the_checkpoints_as_they_were(tmp_path, broker):
+    """Restarting a daemon that learned nothing (a maintenance reboot, a crash loop of the
+    broker) must not push real rollback points out of ``checkpoints.keep`` with copies."""
+    from daemon_proc import checkpoint_ids
+    daemon, probe = start(tmp_path, broker, [model_config(warmup=5)])
+    try:
+        probe.publish_many(list(bearing_stream(20, seed=9)))
+        predictions(probe, 15)
+    finally:
+        probe.close()
+        assert daemon.stop() == 0
+    state = str(tmp_path / "state")
+    saved = checkpoint_ids(state)
+    assert len(saved) == 1
+    for _ in range(2):
+        idle = Daemon(daemon.config)
+        idle.wait_ready(20)
+        assert idle.stop() == 0
+        assert "event=model_restored" in idle.log()
+    assert checkpoint_ids(state) == saved
