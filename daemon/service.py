@@ -66,6 +66,7 @@ class Service:
             raise
         self.http = None
         self._ready = False
+        self._info_connection: int | None = None    # link.reconnects when the info last went out
         self._started = time.monotonic()
         self._watchdog_s = sdnotify.watchdog_interval_s(self.env)
         self._last_ping = 0.0
@@ -173,13 +174,15 @@ class Service:
             self._reload()
         self._update_transport_metrics()
         self._notify_ready_and_ping()
+        if self._ready and self.link.connected and self.link.reconnects != self._info_connection:
+            self._publish_info()
         self.link.flush()                  # predict-only ticks, model info, control replies' effects
 
     def _notify_ready_and_ping(self) -> None:
         if not self._ready and (self.link.connected or
                                 time.monotonic() - self._started > READY_WITHOUT_BROKER_S):
             self._ready = True
-            self.engine.publish_model_info()
+            self._publish_info()
             sdnotify.notify("READY=1\nSTATUS=" + ("connected to broker" if self.link.connected
                                                  else "broker not reachable yet; retrying"), self.env)
             self.log("info", "ready", broker_connected=self.link.connected)
@@ -188,6 +191,12 @@ class Service:
         if self._ready and self._watchdog_s and now - self._last_ping >= self._watchdog_s / 2:
             self._last_ping = now
             sdnotify.notify("WATCHDOG=1", self.env)
+
+    def _publish_info(self) -> None:
+        """The retained model descriptions (with the advisory notice), again after each
+        reconnect: a broker restarted without persistence has forgotten them."""
+        self.engine.publish_model_info()
+        self._info_connection = self.link.reconnects if self.link.connected else None
 
     def _update_transport_metrics(self) -> None:
         self.metrics.transport(queue_depth=self.link.depth, queue_dropped=self.link.dropped,

@@ -508,6 +508,9 @@ def test_recovers_by_itself_when_the_broker_is_killed_and_restarted(tmp_path, br
         probe = Probe(broker)
         handshake(daemon, probe)
         assert retained(broker, STATUS) == b"online"         # the new broker forgot; we said it again
+        # ... and the model's description with the advisory notice, retained again too
+        wait_until(lambda: retained(broker, TOPIC + "/info", 1.0) is not None, 10, "the model info again")
+        assert "advisory" in json.loads(retained(broker, TOPIC + "/info"))["advisory"].lower()
         probe.publish_many(stream[3 * 50:])
         resumed = predictions(probe, 40)
         status = daemon.status()
