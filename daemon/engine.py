@@ -241,6 +241,7 @@ class Engine:
                       reason=exc.reason, detail=str(exc), **where)
 
     def _skip(self, rt: ModelRuntime, exc: SampleSkipped) -> None:
+        rt.skipped[exc.reason] = rt.skipped.get(exc.reason, 0) + 1
         if self.metrics is not None:
             self.metrics.skipped(rt.name, exc.reason)
         self.say_once("info", "sample_skipped", (rt.name, exc.reason), model=rt.name,

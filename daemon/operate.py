@@ -133,4 +133,12 @@ def _print_status(st: dict) -> None:
         print(f"  {name}: samples {m['samples']}  recent loss {loss}  learning rate {m['learning_rate']:.4g}"
               f" (configured {m['configured_learning_rate']:.4g})  checkpoint {m['checkpoint'] or '-'}"
               f"  drift {'ACTIVE' if m['drift_active'] else 'no'}  {m['architecture']}")
+        notes = []
+        if not m.get("warmed_up", True):
+            notes.append(f"warming up: nothing is published before {m.get('warmup_samples')} samples")
+        if m.get("skipped"):
+            notes.append("target readings skipped since start: "
+                         + ", ".join(f"{k}={v}" for k, v in sorted(m["skipped"].items())))
+        for note in notes:
+            print(f"    {note}")
     print("Predictions are advisory only; never a protective function.")

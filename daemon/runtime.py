@@ -51,6 +51,9 @@ class ModelRuntime:
         self.lag0 = self._lag0_columns(settings)
         self.lag0_cols: list[int] = self.lag0.tolist()     # the same, for plain-list indexing
         self.last_loss = float("nan")
+        # target readings that formed no sample, by reason, since start: `status` shows them,
+        # so "samples 0" after minutes of traffic comes with its why (stale inputs, lags)
+        self.skipped: dict[str, int] = {}
         self.seen_at = np.zeros(TIME_RING)   # worker clock when each recent scored sample was handled
         self.seen_n = 0
 
@@ -255,7 +258,8 @@ class ModelRuntime:
                 "learning_rate": lr.learning_rate, "configured_learning_rate": lr.training.learning_rate,
                 "checkpoint": self.checkpoint_id, "drift_active": bool(self.drift.active),
                 "interval_coverage": self.interval.coverage, "architecture": lr.net.architecture,
-                "window": len(lr.window)}
+                "window": len(lr.window), "warmup_samples": lr.training.warmup_samples,
+                "skipped": dict(self.skipped)}
 
 
 def store_for(state_dir: str, model: ModelSettings, keep: int, log: Callable[..., None],

@@ -306,6 +306,9 @@ def test_stale_input_skips_samples_and_counts_them(tmp_path, broker):
         assert len(probe.predictions()) == len(first)
         samples = scrape(url)
         status = daemon.status()
+        shown = subprocess.run([sys.executable, "-m", "daemon.cli", "status", "-c", daemon.config],
+                               capture_output=True, text=True, timeout=30,
+                               env={**os.environ, "PYTHONPATH": ROOT})
         # The current comes back: predictions resume at once.
         t_back = t_stale + 20
         probe.publish_many([m for j in range(10) for m in stream.step(80 + j, t_back + j,
@@ -319,6 +322,9 @@ def test_stale_input_skips_samples_and_counts_them(tmp_path, broker):
     assert metric(samples, "edgeprop_samples_skipped_total", model="m1", reason="stale") == 20
     assert metric(samples, "edgeprop_samples_skipped_total", model="m1", reason="no_data") == 1
     assert status["models"]["m1"]["samples"] == 60
+    assert status["models"]["m1"]["skipped"] == {"stale": 20, "no_data": 1}
+    assert shown.returncode == 0, shown.stderr
+    assert "target readings skipped since start: no_data=1, stale=20" in shown.stdout, shown.stdout
     assert "event=sample_skipped" in log and "reason=stale" in log and "reason=no_data" in log
     assert [m["t"] for m in after[len(first):]] == [t_back + j for j in range(10)]
     assert_clean_log(log)
