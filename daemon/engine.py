@@ -220,6 +220,7 @@ class Engine:
         try:
             cid = rt.checkpoint(reason)
         except (CheckpointError, OSError) as exc:
+            rt.last_save_error = str(exc)
             self.log("error", "checkpoint_failed", model=rt.name, reason=reason, error=str(exc))
             if self.metrics is not None:
                 self.metrics.checkpoint_failed(rt.name)

@@ -54,6 +54,7 @@ class ModelRuntime:
         # target readings that formed no sample, by reason, since start: `status` shows them,
         # so "samples 0" after minutes of traffic comes with its why (stale inputs, lags)
         self.skipped: dict[str, int] = {}
+        self.last_save_error = ""            # why the last failed save failed (for save-now)
         self.seen_at = np.zeros(TIME_RING)   # worker clock when each recent scored sample was handled
         self.seen_n = 0
 

@@ -263,7 +263,7 @@ class Service:
                 rt = self.engine._model(name)
                 ids[name] = self.engine.checkpoint_model(rt, "operator")
                 if ids[name] is None:
-                    raise CheckpointError(f"saving {name!r} failed; see the daemon log")
+                    raise CheckpointError(f"saving {name!r} failed: {rt.last_save_error}")
             return ids
         if cmd == "checkpoints":
             return {name: rt.checkpoint_id for name, rt in self.engine.models.items()}

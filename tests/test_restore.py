@@ -134,3 +134,14 @@ def test_an_idle_restart_writes_no_copy_but_a_rollback_is_saved_as_the_newest(tm
     fresh.engine.restore_all()
     fresh.engine.checkpoint_changed("shutdown")      # a model that saw nothing saves nothing
     assert fresh.rt.store.list() == []
+
+
+def test_a_failed_save_keeps_its_reason_for_the_operator_and_loses_nothing(tmp_path) -> None:
+    p, good = trained(tmp_path)
+    p.feed(10)
+    directory = p.rt.store.directory
+    p.rt.store.directory = str(tmp_path / "gone" / "m1")     # as if the disk went away
+    assert p.engine.checkpoint_model(p.rt, "operator") is None
+    assert "No such file" in p.rt.last_save_error and "gone/m1" in p.rt.last_save_error
+    p.rt.store.directory = directory
+    assert [c.id for c in p.rt.store.list()] == [good]
