@@ -15,6 +15,7 @@ import sys
 import yaml
 
 from daemon.capture import CaptureWriter
+from daemon.cli import build_parser
 from daemon.config import parse_config
 from daemon.replay import replay
 from daemon_proc import ROOT
@@ -92,3 +93,11 @@ def test_example_lag_comment_states_the_first_prediction_delay_it_causes(tmp_pat
     service = text[text.index("## Run it as a service"):text.index("## Guarantees")]
     assert "more than 2 minutes" in service.replace("\n", " ")
     assert f"{longest:g} s of motor-current history" in service.replace("\n", " ")
+
+
+def test_files_the_demo_and_readme_write_in_the_checkout_are_ignored_by_git():
+    out = build_parser().parse_args(["demo"]).out         # the demo's default --out
+    for path in (f"{out}/report.png", "example-check.yaml"):
+        proc = subprocess.run(["git", "-C", ROOT, "check-ignore", "-q", path],
+                              capture_output=True, text=True, timeout=30)
+        assert proc.returncode == 0, f"{path} is not ignored by .gitignore ({proc.stderr.strip()})"
