@@ -8,6 +8,10 @@ its simulated time and the config aligns on it. The view listens to the
 daemon's predictions and asks its control socket for learning rate and loss.
 Ctrl-C or SIGTERM stops the station, then the daemon, then the broker, and
 the report is still written from what arrived.
+
+With ``--broker`` the demo's three clients (daemon, station, view) connect
+anonymously over plain TCP: it is a first look on a test broker, and a broker
+that wants a login is better tried with a config of one's own and ``run``.
 """
 from __future__ import annotations
 
@@ -175,8 +179,30 @@ def status(sock: str) -> Optional[dict]:
     return reply.get("result") if reply.get("ok") else None
 
 
-def wait_daemon_ready(daemon: Child, sock: str, stop: threading.Event, timeout: float = 30.0) -> None:
-    """Until the daemon answers on its socket and is connected to the broker."""
+# Lines the daemon logs for a connection attempt that failed (daemon/mqtt_link.py), and the
+# CONNACK refusals that no retry will cure (MQTT 3.1.1 codes 4 and 5, MQTT 5 0x86 and 0x87).
+CONNECT_FAILED = ("event=broker_connect_failed", "event=broker_connection_lost")
+LOGIN_REFUSED = ("Not authorized", "Bad user name or password")
+ANONYMOUS_ONLY = ("the demo connects without a user name, password or TLS, so --broker must "
+                  "accept anonymous clients on plain TCP; leave --broker out to use the embedded broker")
+
+
+def last_connect_error(log_path: str) -> Optional[str]:
+    """The daemon's last failed-connection line, which holds the broker's own reason."""
+    for line in reversed(_tail(log_path, 200).splitlines()):
+        if any(event in line for event in CONNECT_FAILED):
+            return line.strip()
+    return None
+
+
+def wait_daemon_ready(daemon: Child, sock: str, stop: threading.Event, timeout: float = 30.0,
+                      external: bool = True) -> None:
+    """Until the daemon answers on its socket and is connected to the broker.
+
+    A refused login fails at once, as retrying cannot fix it; any other failure is
+    retried until ``timeout``. Either way the message carries the daemon's own
+    last connection error, which otherwise sits unseen in its log.
+    """
     deadline = time.monotonic() + timeout
     while time.monotonic() < deadline and not stop.is_set():
         daemon.check_alive()
@@ -184,9 +210,16 @@ def wait_daemon_ready(daemon: Child, sock: str, stop: threading.Event, timeout: 
         if st is not None and st.get("broker_connected"):
             time.sleep(0.3)            # its SUBSCRIBE goes out right after CONNACK
             return
+        error = last_connect_error(daemon.log_path)
+        if error is not None and any(reason in error for reason in LOGIN_REFUSED):
+            raise EdgepropError(f"the broker refused the daemon's login: {error}\n{ANONYMOUS_ONLY}")
         time.sleep(0.1)
     if not stop.is_set():
-        raise EdgepropError(f"the daemon did not connect within {timeout:g} s; see {daemon.log_path}")
+        error = last_connect_error(daemon.log_path)
+        said = (f"its last connection error: {error}" if error is not None
+                else "it logged no connection error")
+        raise EdgepropError(f"the daemon did not connect within {timeout:g} s; {said}\n"
+                            f"(see {daemon.log_path}" + (f"; {ANONYMOUS_ONLY})" if external else ")"))
 
 
 class Collector:
@@ -302,7 +335,7 @@ def run_demo(args: argparse.Namespace) -> int:
               f"daemon config {config}; log {os.path.join(out, 'daemon.log')}", flush=True)
         daemon = start_daemon(config, out)
         undo.callback(_stop_daemon, daemon)
-        wait_daemon_ready(daemon, sock, stop)
+        wait_daemon_ready(daemon, sock, stop, external=external is not None)
         if not stop.is_set():
             collector = Collector(host, port, f"edgeprop/demo-station/{MODEL}")
             undo.callback(collector.close)

@@ -28,8 +28,9 @@ import numpy as np
 from .capture import BadLine, read_capture
 from .config import load_config
 from .engine import Engine
-from .errors import EdgepropError
+from .errors import EdgepropError, PayloadError, SampleSkipped
 from .logs import Log
+from .report import accuracy, log_loss_terms
 from .settings import Settings
 
 PROGRESS_EVERY = 2000       # lines between progress updates
@@ -56,13 +57,93 @@ class ReplaySummary:
         if self.rejects:
             out.append("rejected payloads: " + ", ".join(f"{k}={v}" for k, v in sorted(self.rejects.items())))
         for name, m in self.models.items():
-            err = (f"accuracy {m['accuracy']:.4f}" if "accuracy" in m
-                   else f"RMSE {m['rmse']:.4g} (second half {m['rmse_second_half']:.4g})")
-            cov = "" if m.get("coverage") is None else f", interval coverage {m['coverage']:.3f}"
-            out.append(f"  {name}: {m['messages']} predictions, {err}{cov}, drift events "
-                       f"{m['drift_events']}, guard trips {m['guard_trips']}")
+            out.append(_model_line(name, m))
+            if m.get("why"):
+                out.append(f"    {m['why']}")
         out.append("Predictions are advisory only; never a protective function.")
         return "\n".join(out)
+
+
+def _model_line(name: str, m: dict) -> str:
+    if not m["messages"]:
+        return f"  {name}: 0 predictions, guard trips {m['guard_trips']}"
+    err = (f"accuracy {m['accuracy']:.4f}, log-loss {m['log_loss']:.4g}" if "accuracy" in m
+           else f"RMSE {m['rmse']:.4g} (second half {m['rmse_second_half']:.4g})")
+    cov = "" if m.get("coverage") is None else f", interval coverage {m['coverage']:.3f}"
+    return (f"  {name}: {m['messages']} predictions, {err}{cov}, drift events "
+            f"{m['drift_events']}, guard trips {m['guard_trips']}")
+
+
+@dataclass
+class ModelTally:
+    """What became of one model's target readings, for saying why predictions are few.
+
+    ``run`` counts skips only in Prometheus; a replay has no metrics, and
+    "0 predictions" alone leaves a user guessing between a topic typo, a lag
+    longer than the capture and a warm-up that never ended.
+    """
+
+    target_topic: str
+    warmup_samples: int
+    targets: int = 0                    # target readings decoded for this model
+    warmup: int = 0                     # learned from before warm-up ended, so not predicted
+    skipped: dict[str, int] = field(default_factory=dict)       # by reason: stale, no_data
+    first_skip: dict[str, str] = field(default_factory=dict)    # reason -> its first detail
+    rejected: dict[str, int] = field(default_factory=dict)      # payloads on its topics, by reason
+
+    def few(self, predictions: int) -> bool:
+        """True when fewer than half of the target readings became predictions."""
+        return predictions == 0 or 2 * predictions < self.targets
+
+    def why(self) -> str:
+        """The reasons, largest first, in words a user can act on."""
+        if not self.targets:
+            parts = [f"why: no target reading on {self.target_topic} reached the model"]
+        else:
+            causes = []
+            if self.warmup:
+                causes.append(f"{self.warmup} in warm-up (predictions start after "
+                              f"{self.warmup_samples} learned samples, training.warmup_samples)")
+            for reason, n in sorted(self.skipped.items(), key=lambda kv: -kv[1]):
+                causes.append(f"{n} skipped as {reason} (first: {self.first_skip[reason]})")
+            parts = [f"why: {self.targets} target readings, not predicted: " + ", ".join(causes)]
+        if self.rejected:
+            parts.append("payloads rejected on its topics: "
+                         + ", ".join(f"{k}={v}" for k, v in sorted(self.rejected.items())))
+        return "; ".join(parts)
+
+
+class ReplayEngine(Engine):
+    """The daemon's engine, also keeping a ``ModelTally`` per model (see there for why).
+
+    It hooks the engine's own per-reading steps rather than copying them, so the
+    counts are of what the daemon did; tests/test_replay.py fails if a hook goes stale.
+    """
+
+    def __init__(self, settings: Settings, *args, **kwargs) -> None:
+        super().__init__(settings, *args, **kwargs)
+        self.tally = {m.name: ModelTally(m.target.topic, m.training.warmup_samples)
+                      for m in settings.models}
+
+    def _on_target(self, rt, t: float, y: float) -> None:
+        tally = self.tally[rt.name]
+        tally.targets += 1
+        warming = not rt.learner.warmed_up
+        super()._on_target(rt, t, y)
+        if warming:
+            tally.warmup += 1
+
+    def _skip(self, rt, exc: SampleSkipped) -> None:
+        tally = self.tally[rt.name]
+        tally.skipped[exc.reason] = tally.skipped.get(exc.reason, 0) + 1
+        tally.first_skip.setdefault(exc.reason, str(exc).split(": ", 1)[-1])
+        super()._skip(rt, exc)
+
+    def _reject(self, exc: PayloadError, **where: object) -> None:
+        tally = self.tally.get(str(where.get("model")))
+        if tally is not None:
+            tally.rejected[exc.reason] = tally.rejected.get(exc.reason, 0) + 1
+        super()._reject(exc, **where)
 
 
 def bad_line_kind(reason: str) -> str:
@@ -82,7 +163,7 @@ class _CaptureClock:
 
 def replay(settings: Settings, capture_path: str, sink: Callable[[dict], None],
            log: Optional[Callable[..., None]] = None,
-           progress: Optional[Callable[[int], None]] = None) -> tuple[ReplaySummary, Engine]:
+           progress: Optional[Callable[[int], None]] = None) -> tuple[ReplaySummary, ReplayEngine]:
     """Feed every capture line to a fresh engine; ``sink`` receives each published message."""
     clock = _CaptureClock()
     summary = ReplaySummary()
@@ -94,7 +175,7 @@ def replay(settings: Settings, capture_path: str, sink: Callable[[dict], None],
             sink(json.loads(body))
         return True
 
-    engine: Engine | None = None
+    engine: ReplayEngine | None = None
     internal_errors = 0
     started = time.perf_counter()
     for item in read_capture(capture_path):
@@ -106,7 +187,7 @@ def replay(settings: Settings, capture_path: str, sink: Callable[[dict], None],
             continue
         clock.now = item.t
         if engine is None:
-            engine = Engine(settings, publish, log or Log("warning"), None, clock)
+            engine = ReplayEngine(settings, publish, log or Log("warning"), None, clock)
         try:
             engine.handle(item.topic, item.payload, item.t)
         except Exception:       # as run's worker does: count it and go on (see service._handle_one)
@@ -117,24 +198,29 @@ def replay(settings: Settings, capture_path: str, sink: Callable[[dict], None],
             progress(summary.lines)
     summary.seconds = time.perf_counter() - started
     if engine is None:
-        engine = Engine(settings, publish, log or Log("warning"), None, clock)
+        engine = ReplayEngine(settings, publish, log or Log("warning"), None, clock)
     summary.rejects = dict(engine.rejects)
     if internal_errors:
         summary.rejects["internal_error"] = internal_errors
     return summary, engine
 
 
-def score_messages(messages: list[dict], engine: Engine) -> dict[str, dict]:
-    """Per-model prequential scores from the published messages."""
+def score_messages(messages: list[dict], engine: ReplayEngine) -> dict[str, dict]:
+    """Per-model prequential scores from the published messages, and why they are few if so."""
     out: dict[str, dict] = {}
     for name, rt in engine.models.items():
         ms = [m for m in messages if m["model"] == name and m["measured"] is not None]
         res = np.asarray([m["residual"] for m in ms], float)
         entry: dict = {"messages": len(ms), "drift_events": engine.drift_events.get(name, 0),
                        "guard_trips": engine.guard_trips.get(name, 0)}
+        tally = engine.tally[name]
+        if tally.few(len(ms)):
+            entry["why"] = tally.why()
         if rt.learner.binary:
-            hits = [(m["predicted"] >= 0.5) == (m["measured"] >= 0.5) for m in ms]
-            entry["accuracy"] = float(np.mean(hits)) if hits else math.nan
+            p = np.asarray([m["predicted"] for m in ms], float)
+            y = np.asarray([m["measured"] for m in ms], float)
+            entry["accuracy"] = accuracy(p, y)
+            entry["log_loss"] = float(np.mean(log_loss_terms(p, y))) if len(ms) else math.nan
         else:
             entry["rmse"] = float(np.sqrt(np.mean(res ** 2))) if len(res) else math.nan
             half = res[len(res) // 2:]
@@ -167,7 +253,8 @@ def run_replay(args: argparse.Namespace) -> int:
             print("no predictions were published; no plot written")
             return 0
         from .report import write_report
-        png, txt = write_report(messages, args.report, f"replay of {args.capture}")
+        binary = [m.name for m in settings.models if m.task == "binary"]
+        png, txt = write_report(messages, args.report, f"replay of {args.capture}", binary=binary)
         print(f"plot: {png}\nsummary: {txt}")
     return 0
 

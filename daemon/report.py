@@ -1,6 +1,6 @@
 """A picture and a few numbers from published messages: did the soft sensor track, and when not?
 
-Used by ``demo`` and ``replay``. The plot puts measured against predicted with
+Used by ``demo``, ``replay`` and ``tune``. The plot puts measured against predicted with
 the prediction interval, the residual with the same interval centred on zero
 (so a reading outside its band stands out), and marks drift episodes and
 learning-rate changes, with time in hours from the first message.
@@ -13,7 +13,7 @@ import math
 import os
 import textwrap
 from dataclasses import dataclass
-from typing import Optional
+from typing import Collection, Optional
 
 import numpy as np
 
@@ -33,14 +33,19 @@ class ModelSeries:
     high: np.ndarray
     drift: np.ndarray
     outside: np.ndarray        # 1, 0, or NaN on predict-only ticks
+    binary: bool = False       # predicted is a probability of 1: no RMSE, no interval
 
 
 def _floats(messages: list[dict], key: str) -> np.ndarray:
     return np.array([np.nan if m.get(key) is None else float(m[key]) for m in messages], float)
 
 
-def split_by_model(messages: list[dict]) -> list[ModelSeries]:
-    """Group messages per model, in order of first appearance, sorted by time within a model."""
+def split_by_model(messages: list[dict], binary: Collection[str] = ()) -> list[ModelSeries]:
+    """Group messages per model, in order of first appearance, sorted by time within a model.
+
+    ``binary`` names the binary models: their messages do not say so themselves,
+    and a 0/1 target scored as a number gives figures that mean nothing.
+    """
     groups: dict[str, list[dict]] = {}
     for m in messages:
         groups.setdefault(str(m.get("model", "?")), []).append(m)
@@ -49,7 +54,8 @@ def split_by_model(messages: list[dict]) -> list[ModelSeries]:
         ms = sorted(ms, key=lambda m: float(m["t"]))
         out.append(ModelSeries(name, _floats(ms, "t"), _floats(ms, "predicted"), _floats(ms, "measured"),
                                _floats(ms, "low"), _floats(ms, "high"),
-                               np.array([bool(m.get("drift")) for m in ms]), _floats(ms, "outside")))
+                               np.array([bool(m.get("drift")) for m in ms]), _floats(ms, "outside"),
+                               name in binary))
     return out
 
 
@@ -63,8 +69,48 @@ def _rmse(r: np.ndarray) -> float:
     return math.sqrt(float(np.mean(r * r))) if r.size else math.nan
 
 
+def log_loss_terms(p: np.ndarray, y: np.ndarray) -> np.ndarray:
+    """Log-loss of each probability ``p`` of 1 against 0/1 ``y``.
+
+    Clipped to [1e-12, 1 - 1e-12] so that one confident miss costs a large but
+    finite amount, and rates with such a miss still compare with the others.
+    """
+    p = np.clip(np.asarray(p, float), 1e-12, 1.0 - 1e-12)
+    y = np.asarray(y, float)
+    return -(y * np.log(p) + (1.0 - y) * np.log(1.0 - p))
+
+
+def accuracy(p: np.ndarray, y: np.ndarray) -> float:
+    """Share of predictions on the right side of 0.5 (a probability of exactly 0.5 counts as 1)."""
+    p, y = np.asarray(p, float), np.asarray(y, float)
+    return float(np.mean((p >= 0.5) == (y >= 0.5))) if p.size else math.nan
+
+
+def _mean(x: np.ndarray) -> float:
+    return float(np.mean(x)) if x.size else math.nan
+
+
+def binary_summary(s: ModelSeries) -> dict[str, float]:
+    """Counts, accuracy and log-loss (all, later half of measured messages), drift episodes."""
+    has = ~np.isnan(s.measured) & ~np.isnan(s.predicted)
+    p, y = s.predicted[has], s.measured[has]
+    half = p.size // 2
+    return {
+        "messages": int(s.t.size), "measured": int(has.sum()),
+        "accuracy_all": accuracy(p, y), "accuracy_last_half": accuracy(p[half:], y[half:]),
+        "log_loss_all": _mean(log_loss_terms(p, y)),
+        "log_loss_last_half": _mean(log_loss_terms(p[half:], y[half:])),
+        "drift_episodes": int(drift_starts(s.drift).size),
+    }
+
+
 def model_summary(s: ModelSeries) -> dict[str, float]:
-    """Counts, RMSE (all, later half of measured messages), interval coverage, drift episodes."""
+    """Counts, RMSE (all, later half of measured messages), interval coverage, drift episodes.
+
+    A binary model gets ``binary_summary`` instead.
+    """
+    if s.binary:
+        return binary_summary(s)
     has = ~np.isnan(s.measured) & ~np.isnan(s.predicted)
     r = (s.measured - s.predicted)[has]
     banded = has & ~np.isnan(s.low) & ~np.isnan(s.high)
@@ -84,6 +130,9 @@ def summary_text(title: str, series: list[ModelSeries]) -> str:
     lines = [title, ""]
     for s in series:
         d = model_summary(s)
+        if s.binary:
+            lines += _binary_lines(s.name, d)
+            continue
         lines += [f"model {s.name}",
                   f"  messages          {d['messages']} ({d['measured']} with a measurement)",
                   f"  RMSE all          {d['rmse_all']:.4g}",
@@ -92,6 +141,16 @@ def summary_text(title: str, series: list[ModelSeries]) -> str:
                   f"  fraction outside  {d['fraction_outside']:.3f} (flagged in messages)",
                   f"  drift episodes    {d['drift_episodes']}", ""]
     return "\n".join(lines + [ADVISORY, ""])
+
+
+def _binary_lines(name: str, d: dict[str, float]) -> list[str]:
+    return [f"model {name} (binary: predicted is the probability of 1)",
+            f"  messages            {d['messages']} ({d['measured']} with a measurement)",
+            f"  accuracy all        {d['accuracy_all']:.4f} (probability >= 0.5 taken as 1)",
+            f"  accuracy last half  {d['accuracy_last_half']:.4f}",
+            f"  log-loss all        {d['log_loss_all']:.4g}",
+            f"  log-loss last half  {d['log_loss_last_half']:.4g}",
+            f"  drift episodes      {d['drift_episodes']}", ""]
 
 
 def _mark_events(ax, events: list[dict], model: str, t0: float) -> None:
@@ -109,10 +168,11 @@ def _mark_events(ax, events: list[dict], model: str, t0: float) -> None:
 
 def _draw_model(ax_val, ax_res, s: ModelSeries, t0: float, events: list[dict]) -> None:
     h = (s.t - t0) / 3600.0
-    ax_val.fill_between(h, s.low, s.high, color="tab:blue", alpha=0.2, linewidth=0, label="interval")
+    if not s.binary:         # a binary model has no interval
+        ax_val.fill_between(h, s.low, s.high, color="tab:blue", alpha=0.2, linewidth=0, label="interval")
     ax_val.plot(h, s.measured, ".", color="black", markersize=1.5, label="measured")
     ax_val.plot(h, s.predicted, color="tab:blue", linewidth=0.8, label="predicted")
-    ax_val.set_ylabel(s.name)
+    ax_val.set_ylabel(f"{s.name}\nP(1)" if s.binary else s.name)
     ax_val.legend(loc="upper left", fontsize=7, ncol=3)
     ax_res.fill_between(h, s.low - s.predicted, s.high - s.predicted, color="tab:blue", alpha=0.2, linewidth=0)
     ax_res.plot(h, s.measured - s.predicted, ".", color="tab:orange", markersize=1.5)
@@ -125,12 +185,15 @@ def _draw_model(ax_val, ax_res, s: ModelSeries, t0: float, events: list[dict]) -
 
 
 def write_report(messages: list[dict], out_dir: str, title: str,
-                 events: Optional[list[dict]] = None) -> tuple[str, str]:
-    """Write ``report.png`` and ``report.txt`` into ``out_dir``; return their paths."""
+                 events: Optional[list[dict]] = None, binary: Collection[str] = ()) -> tuple[str, str]:
+    """Write ``report.png`` and ``report.txt`` into ``out_dir``; return their paths.
+
+    ``binary`` names the binary models, reported by accuracy and log-loss.
+    """
     from matplotlib.backends.backend_agg import FigureCanvasAgg
     from matplotlib.figure import Figure
 
-    series = split_by_model(messages)
+    series = split_by_model(messages, binary)
     if not series:
         raise ValueError("no published messages to report on")
     os.makedirs(out_dir, exist_ok=True)

@@ -8,13 +8,15 @@ import signal
 import socket
 import subprocess
 import sys
+import threading
 import time
 
 import numpy as np
 import pytest
 
 from daemon.config import load_config
-from daemon.demo import View, parse_broker, require, scenario_times, write_demo_config  # re-exported
+from daemon.demo import (View, parse_broker, require, scenario_times, start_daemon,  # View, scenario_times
+                         wait_daemon_ready, write_demo_config)                   # are re-exported
 from daemon.errors import ConfigError, EdgepropError
 from daemon_proc import ROOT
 
@@ -140,3 +142,63 @@ def test_view_plain_lines_and_in_place_redraw():
     tty.note_status(status, msgs)
     assert tty.events == [{"t": msgs[-1]["t"], "kind": "learning_rate", "value": "0.03",
                            "model": "bearing_temp"}]
+
+
+@pytest.mark.integration
+def test_broker_refusing_anonymous_clients_fails_at_once_with_its_reason(broker_factory, tmp_path):
+    server = broker_factory(users={"edge": "pump-station-7"})
+    out = tmp_path / "demo"
+    started = time.monotonic()
+    proc = demo(out, "--duration", "20", "--broker", f"{server.host}:{server.port}")
+    try:
+        stdout, _ = proc.communicate(timeout=60)
+    finally:
+        proc.kill()
+    took = time.monotonic() - started
+    assert proc.returncode == 1, stdout
+    assert re.search(r"refused the daemon's login: .*event=broker_connect_failed reason=\"Not authorized\"",
+                     stdout)
+    assert "accept anonymous clients" in stdout and took < 20          # not the 30 s wait
+    assert "event=stopped" in (out / "daemon.log").read_text()           # the daemon was still stopped
+
+
+class ClosingListener:
+    """A TCP port that accepts connections and closes them at once: no MQTT broker behind it."""
+
+    def __init__(self) -> None:
+        self.sock = socket.socket()
+        self.sock.bind(("127.0.0.1", 0))
+        self.sock.listen(8)
+        self.sock.settimeout(0.2)
+        self.port = self.sock.getsockname()[1]
+        self.done = threading.Event()
+        self.thread = threading.Thread(target=self._serve, daemon=True)
+        self.thread.start()
+
+    def _serve(self) -> None:
+        while not self.done.is_set():
+            try:
+                conn, _ = self.sock.accept()
+            except OSError:
+                continue
+            conn.close()
+
+    def close(self) -> None:
+        self.done.set()
+        self.thread.join(5)
+        self.sock.close()
+
+
+def test_daemon_that_never_connects_names_its_last_connection_error(tmp_path):
+    listener = ClosingListener()
+    config = write_demo_config(str(tmp_path), "127.0.0.1", listener.port, str(tmp_path / "c.sock"))
+    daemon = start_daemon(config, str(tmp_path))
+    try:
+        with pytest.raises(EdgepropError) as caught:
+            wait_daemon_ready(daemon, str(tmp_path / "c.sock"), threading.Event(), timeout=4.0)
+    finally:
+        daemon.stop()
+        listener.close()
+    text = str(caught.value)
+    assert "did not connect within 4 s; its last connection error: level=warning event=broker_" in text
+    assert "reason=" in text and str(tmp_path / "daemon.log") in text and "anonymous" in text

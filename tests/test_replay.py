@@ -3,6 +3,7 @@ from __future__ import annotations
 
 import json
 import math
+import re
 import os
 import pty
 import subprocess
@@ -245,3 +246,76 @@ def test_progress_bar_on_a_terminal(tmp_path):
     assert proc.wait(60) == 0
     text = seen.decode()
     assert "\r[" in text and "100%" in text and "4,200 / 4,200 lines" in text
+
+
+def run_replay_cli(tmp_path, cfg: dict, cap, *extra: str) -> subprocess.CompletedProcess:
+    path = tmp_path / "c.yaml"
+    path.write_text(yaml.safe_dump(cfg))
+    return subprocess.run([sys.executable, "-m", "daemon.cli", "replay", "-c", str(path), "--capture",
+                           str(cap), "--out", str(tmp_path / "out.jsonl"), *extra],
+                          capture_output=True, text=True, timeout=60, env={**os.environ, "PYTHONPATH": ROOT})
+
+
+def test_capture_too_short_for_lag_and_warm_up_says_why(tmp_path):
+    # 30 targets 10 s apart; lag 20 s: the first two have no current reading 20 s before them
+    # (stale), the other 28 are learned during the 40-sample warm-up; one target lacks its field
+    cap = tmp_path / "short.jsonl"
+    write_capture(cap, list(readings(30)) + [("site/p1/bearing_temp", b'{"ts": 1765000300}')])
+    proc = run_replay_cli(tmp_path, {"node": "testnode", "models": [timed_model()]}, cap)
+    assert proc.returncode == 0, proc.stderr
+    text = proc.stdout
+    assert "m1: 0 predictions" in text and "nan" not in text
+    why = next(line for line in text.splitlines() if "why:" in line)
+    assert "30 target readings" in why and "28 in warm-up" in why and "after 40 learned samples" in why
+    assert "2 skipped as stale" in why and "(lag 20 s) has no reading at or before t - 20 s" in why
+    assert "payloads rejected on its topics: missing_field=1" in why
+
+
+def test_model_with_enough_predictions_has_no_why_line(tmp_path):
+    cap = tmp_path / "cap.jsonl"
+    write_capture(cap, list(readings(300)))
+    proc = run_replay_cli(tmp_path, {"node": "testnode", "models": [timed_model()]}, cap)
+    assert proc.returncode == 0, proc.stderr
+    assert "why:" not in proc.stdout and "RMSE" in proc.stdout
+
+
+def binary_model() -> dict:
+    """A binary model on site/p1/high: whether the speed is above 1000 rpm (with noise)."""
+    return {"name": "high", "task": "binary",
+            "target": {"topic": "site/p1/high", "field": "value", "time_field": "ts"},
+            "inputs": [{"name": "speed", "topic": "site/p1/speed", "field": "value", "time_field": "ts"}],
+            "align": {"max_age_s": 30}, "net": {"hidden": [8], "seed": 2},
+            "training": {"learning_rate": 0.05, "warmup_samples": 20}}
+
+
+def with_binary_target(items, seed: int = 0):
+    """``readings`` with a 0/1 reading on site/p1/high after each speed, flipped 10 % of the time."""
+    rng = np.random.default_rng(seed)
+    for topic, payload in items:
+        yield topic, payload
+        if topic == "site/p1/speed":
+            body = json.loads(payload)
+            high = int((body["value"] > 1000) != (rng.random() < 0.1))
+            yield "site/p1/high", json.dumps({"value": high, "ts": body["ts"]}).encode()
+
+
+def test_binary_model_reports_accuracy_and_log_loss_in_report_txt(tmp_path):
+    from sklearn.metrics import accuracy_score, log_loss
+    cap = tmp_path / "cap.jsonl"
+    write_capture(cap, list(with_binary_target(readings(300))))
+    proc = run_replay_cli(tmp_path, {"node": "testnode", "models": [timed_model(), binary_model()]},
+                          cap, "--report", str(tmp_path / "rep"))
+    assert proc.returncode == 0, proc.stderr
+    msgs = [json.loads(x) for x in (tmp_path / "out.jsonl").read_text().splitlines()]
+    high = [m for m in msgs if m["model"] == "high"]
+    y, p = [m["measured"] for m in high], [m["predicted"] for m in high]
+    assert len(high) > 200
+    acc, ll = accuracy_score(y, [int(v >= 0.5) for v in p]), log_loss(y, p, labels=[0, 1])
+    assert f"high: {len(high)} predictions, accuracy {acc:.4f}, log-loss {ll:.4g}" in proc.stdout
+    text = (tmp_path / "rep" / "report.txt").read_text()
+    block = text.split("model high")[1].split("\n\n")[0]
+    assert re.search(rf"accuracy all\s+{acc:.4f}\b", block) and re.search(rf"log-loss all\s+{ll:.4g}\b", block)
+    half = len(y) // 2
+    assert re.search(rf"log-loss last half\s+{log_loss(y[half:], p[half:], labels=[0, 1]):.4g}\b", block)
+    assert "RMSE" not in block and "interval" not in block and "nan" not in block
+    assert "RMSE all" in text.split("model m1")[1]           # the regression model keeps its figures

@@ -76,3 +76,32 @@ def test_write_report_png_and_summary(tmp_path):
 def test_write_report_refuses_nothing(tmp_path):
     with pytest.raises(ValueError, match="no published messages"):
         write_report([], str(tmp_path), "empty")
+
+
+def binary_example():
+    # probabilities of 1 and the 0/1 readings; the third is a confident miss
+    pairs = [(0.9, 1), (0.2, 0), (0.8, 0), (0.4, 0), (0.7, 1), (0.6, 1)]
+    return [{"model": "seal_leak", "t": T0 + 60.0 * k, "predicted": p, "measured": y, "residual": y - p,
+             "low": None, "high": None, "outside": None, "drift": False, "checkpoint": None,
+             "samples": 100 + k} for k, (p, y) in enumerate(pairs)]
+
+
+def test_binary_summary_by_hand():
+    s = split_by_model(binary_example(), binary={"seal_leak"})[0]
+    d = model_summary(s)
+    # hits: 0.9->1 yes, 0.2->0 yes, 0.8->0 no, 0.4->0 yes, 0.7->1 yes, 0.6->1 yes: 5 of 6
+    assert d["accuracy_all"] == pytest.approx(5 / 6) and d["accuracy_last_half"] == pytest.approx(1.0)
+    by_hand = -(math.log(0.9) + math.log(0.8) + math.log(0.2) + math.log(0.6) + math.log(0.7) + math.log(0.6)) / 6
+    assert d["log_loss_all"] == pytest.approx(by_hand, rel=1e-12)
+    from sklearn.metrics import log_loss
+    assert d["log_loss_last_half"] == pytest.approx(log_loss([0, 1, 1], [0.4, 0.7, 0.6]), rel=1e-12)
+    assert "rmse_all" not in d and "coverage" not in d
+
+
+def test_binary_model_in_report_txt_has_no_rmse_or_interval(tmp_path):
+    _, txt = write_report(hand_example() + binary_example(), str(tmp_path), "mixed", binary=["seal_leak"])
+    text = open(txt, encoding="utf-8").read()
+    block = text.split("model seal_leak")[1]
+    assert re.search(r"accuracy all\s+0\.8333\b", block) and re.search(r"log-loss all\s+0\.5527\b", block)
+    assert "RMSE" not in block and "interval" not in block and "nan" not in block
+    assert re.search(r"RMSE all\s+1\.225\b", text.split("model bearing_temp")[1])
