@@ -1,7 +1,10 @@
-"""``edgeprop`` command line. Exit codes: 0 ok, 2 bad usage or config, 1 runtime failure."""
+"""``edgeprop`` command line. Exit codes: 0 ok, 2 bad usage or config, 1 runtime failure,
+141 output pipe closed by its reader."""
 from __future__ import annotations
 
 import argparse
+import os
+import signal
 import sys
 from typing import Sequence
 
@@ -10,6 +13,7 @@ from .errors import ConfigError, EdgepropError
 from .logs import Log
 
 EXIT_OK, EXIT_FAILURE, EXIT_USAGE = 0, 1, 2
+EXIT_BROKEN_PIPE = 128 + signal.SIGPIPE
 
 CAUTION = ("Predictions are advisory only: never a protective function (trip, interlock, "
            "safety instrumented system). Local codes and licensed practice govern.")
@@ -70,7 +74,33 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def main(argv: Sequence[str] | None = None) -> int:
-    """Entry point of the ``edgeprop`` console script."""
+    """Entry point of the ``edgeprop`` console script.
+
+    Output piped into ``head`` and the like may find the pipe closed: that is the reader's
+    choice, not an error, so it ends quietly with the exit code the shell shows for a tool
+    stopped by SIGPIPE (128 + 13), as ``yes | head -1`` does.
+    """
+    try:
+        try:
+            return _main(argv)
+        finally:
+            sys.stdout.flush()        # a closed pipe shows up here when the output was short
+    except BrokenPipeError:
+        _discard_stdout()
+        return EXIT_BROKEN_PIPE
+
+
+def _discard_stdout() -> None:
+    """Point stdout at /dev/null, so the interpreter's last flush at exit has nowhere to fail.
+
+    This is the pattern of the note on SIGPIPE in the Python documentation of ``signal``.
+    """
+    devnull = os.open(os.devnull, os.O_WRONLY)
+    os.dup2(devnull, sys.stdout.fileno())
+    os.close(devnull)
+
+
+def _main(argv: Sequence[str] | None) -> int:
     args = build_parser().parse_args(argv)
     if args.command is None:
         build_parser().print_help()

@@ -248,3 +248,52 @@ def test_offline_command_on_an_unknown_model_exits_1(tmp_path):
     assert res.returncode == 1
     assert "no model named 'nope' in the config; models: bearing_temp" in res.stderr
     assert "Traceback" not in res.stderr
+
+
+# ---- output into a pipe that closes early (as `| head -1` does) ------------------------------
+
+def edgeprop_into_pipe(*args: str, read_lines: int) -> tuple[int, bytes, list[bytes]]:
+    """Run edgeprop with stdout into a pipe whose reader takes ``read_lines`` lines and closes.
+
+    With ``read_lines=0`` the read end is closed before the program starts, so its very first
+    write meets a pipe nobody reads. Returns (exit code, stderr, lines read).
+    """
+    env = {**os.environ, "PYTHONPATH": ROOT}
+    r, w = os.pipe()
+    reader = os.fdopen(r, "rb")
+    if read_lines == 0:
+        reader.close()
+    try:
+        proc = subprocess.Popen([sys.executable, "-m", "daemon.cli", *args], stdout=w,
+                                stderr=subprocess.PIPE, env=env, cwd=ROOT)
+    finally:
+        os.close(w)
+    lines = [reader.readline() for _ in range(read_lines)]
+    reader.close()
+    _, err = proc.communicate(timeout=30)
+    return proc.returncode, err, lines
+
+
+def many_models(n: int) -> str:
+    return "models:\n" + "".join(
+        f"  - name: m{i}\n    target: {{topic: site/p{i}/t}}\n"
+        f"    inputs: [{{name: x, topic: site/p{i}/x}}]\n" for i in range(n))
+
+
+def test_output_into_a_pipe_cut_short_by_its_reader_ends_quietly(tmp_path):
+    # ~250 kB of resolved config: far more than a pipe holds, so the program is still writing
+    # when the reader goes away after its first line.
+    path = write(tmp_path, "metrics: {listen: null}\n" + many_models(150))
+    code, err, lines = edgeprop_into_pipe("check", "-c", path, read_lines=1)
+    assert lines[0].startswith(b"# ") and b"valid" in lines[0]
+    assert err == b"", err.decode()
+    assert code == 128 + 13          # as a tool stopped by SIGPIPE reports to the shell
+
+
+@pytest.mark.parametrize("command", ["checkpoints", "status", "check"])
+def test_output_into_a_pipe_nobody_reads_ends_quietly(tmp_path, command):
+    path = write(tmp_path, "state_dir: st\nmetrics: {listen: null}\n" + MODEL)
+    code, err, _ = edgeprop_into_pipe(command, "-c", path, read_lines=0)
+    assert b"Traceback" not in err and b"BrokenPipeError" not in err, err.decode()
+    assert code == 128 + 13
+
