@@ -243,12 +243,27 @@ class _IntList:
         return BAD if BAD in items else items
 
 
+# An input's history is bounded by a count of readings (align.history), not by an age, so no
+# setting says how far back a lag can reach. 30 days is a plain sanity limit (common practice,
+# no source): far beyond any lag a soft sensor uses, and it refuses values such as 1e300 that
+# would skip every sample as stale.
+MAX_LAG_S = 30 * 86400
+
+
+def _lag(v, path, ctx):
+    lag = _Float(0)(v, path, ctx)
+    if lag is not BAD and lag > MAX_LAG_S:
+        return ctx.bad(path, f"{show(lag)} is out of range; allowed [0, {MAX_LAG_S}] seconds "
+                             f"(30 days)")
+    return lag
+
+
 def _lags(v, path, ctx):
     if not isinstance(v, (list, tuple)):
         return _wrong(v, "a list of lags in seconds like [0, 30]", path, ctx)
     if not 1 <= len(v) <= 64:
         return ctx.bad(path, f"{show(list(v))} has {len(v)} lags; allowed 1 to 64")
-    items = tuple(_Float(0)(x, f"{path}[{i}]", ctx) for i, x in enumerate(v))
+    items = tuple(_lag(x, f"{path}[{i}]", ctx) for i, x in enumerate(v))
     if BAD in items:
         return BAD
     for i, lag in enumerate(items):
