@@ -1,9 +1,9 @@
 """What the broker connection needs from disk, checked before anything connects.
 
-The password file (refused when group or others may read it) and the client TLS context.
-The worker checks them before it starts the link process, so a bad password file or
-certificate stops ``edgeprop run`` at once with exit code 2 and a message naming the key;
-the link process reads them again to connect.
+The password file (refused when group or others may read it, or when it is empty) and the
+client TLS context. The worker checks them before it starts the link process, so a bad
+password file or certificate stops ``edgeprop run`` at once with exit code 2 and a message
+naming the key; the link process reads them again to connect.
 """
 from __future__ import annotations
 
@@ -34,7 +34,11 @@ def read_password_file(path: str) -> str:
         raise ConfigError([f"broker.password_file: {path!r} is not UTF-8 text"]) from exc
     for ending in ("\r\n", "\n"):          # editors add one trailing newline; strip just that
         if text.endswith(ending):
-            return text[: -len(ending)]
+            text = text[: -len(ending)]
+            break
+    if not text:      # never meant: the broker would refuse it with a bare "not authorized"
+        raise ConfigError([f"broker.password_file: {path!r} is empty; write the broker password "
+                           f"into it"])
     return text
 
 

@@ -297,3 +297,20 @@ def test_output_into_a_pipe_nobody_reads_ends_quietly(tmp_path, command):
     assert b"Traceback" not in err and b"BrokenPipeError" not in err, err.decode()
     assert code == 128 + 13
 
+
+
+def private_file(tmp_path, name: str, text: str) -> str:
+    path = tmp_path / name
+    path.write_text(text)
+    path.chmod(0o600)
+    return str(path)
+
+
+def test_run_refuses_an_empty_password_file_before_connecting(tmp_path):
+    secret = private_file(tmp_path, "broker.pass", "\n")
+    path = write(tmp_path, "broker: {username: edge, password_file: broker.pass}\n"
+                           "metrics: {listen: null}\nstate_dir: state\n" + MODEL)
+    res = edgeprop("run", "-c", path, timeout=20)
+    assert res.returncode == 2, res.stderr
+    assert (f"broker.password_file: {secret!r} is empty; write the broker password into it"
+            in res.stderr)
