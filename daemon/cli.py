@@ -147,7 +147,7 @@ def _check(path: str) -> int:
     import yaml
 
     from .config import load_config, resolved_config
-    settings = load_config(path)
+    settings = load_config(path, preflight=True)
     print(f"# {path}: valid. Resolved configuration (defaults filled in):")
     print(yaml.safe_dump(resolved_config(settings), sort_keys=False), end="")
     return EXIT_OK

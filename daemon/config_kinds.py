@@ -35,10 +35,12 @@ INLINE_PASSWORD = ("an inline password is refused: put the password alone in a f
 
 
 class _Ctx:
-    """Where relative paths start, and the problems found so far."""
+    """Where relative paths start, whether to check like ``run`` does before it connects
+    (``preflight``), and the problems found so far."""
 
-    def __init__(self, base_dir: str | None) -> None:
+    def __init__(self, base_dir: str | None, preflight: bool = False) -> None:
         self.base_dir = base_dir
+        self.preflight = preflight
         self.problems: list[str] = []
 
     def bad(self, path: str, message: str) -> _Bad:

@@ -299,11 +299,102 @@ def test_output_into_a_pipe_nobody_reads_ends_quietly(tmp_path, command):
 
 
 
+# ---- check does on disk what run does before it connects -------------------------------------
+
 def private_file(tmp_path, name: str, text: str) -> str:
     path = tmp_path / name
     path.write_text(text)
     path.chmod(0o600)
     return str(path)
+
+
+def problem_lines(stderr: str) -> list[str]:
+    lines = [line.strip() for line in stderr.splitlines()]
+    assert lines[0] == "edgeprop: invalid configuration:", stderr
+    return lines[1:]
+
+
+def test_check_loads_the_files_run_loads_and_reports_them_with_the_other_problems(tmp_path):
+    for name in ("ca.pem", "client.pem", "client.key", "server.pem", "server.key"):
+        (tmp_path / name).write_text("garbage\n")
+    broker_pass = private_file(tmp_path, "broker.pass", "")
+    private_file(tmp_path, "metrics.pass", "")
+    path = write(tmp_path, """\
+broker:
+  username: edge
+  password_file: broker.pass
+  tls: {ca_file: ca.pem, cert_file: client.pem, key_file: client.key}
+metrics:
+  listen: "no.such.host.invalid:9740"
+  tls: {cert_file: server.pem, key_file: server.key}
+  basic_auth: {username: prom, password_file: metrics.pass}
+""" + MODEL.replace("learning_rate: 0.005", "learning_rate: -1"))
+    res = edgeprop("check", "-c", path)
+    assert res.returncode == 2 and res.stdout == "", res.stderr
+    lines = problem_lines(res.stderr)
+    ca = str(tmp_path / "ca.pem")
+
+    def one(prefix: str) -> str:
+        found = [line for line in lines if line.startswith(prefix)]
+        assert len(found) == 1, (prefix, lines)
+        return found[0]
+
+    assert one(f"broker.password_file: {broker_pass!r} is empty; write the broker password into it")
+    assert "NO_CERTIFICATE_OR_CRL_FOUND" in one(f"broker.tls.ca_file: cannot load CA certificates "
+                                                f"from {ca!r}")
+    assert "expected" in one("broker.tls.cert_file/key_file: cannot load client certificate "
+                             f"{str(tmp_path / 'client.pem')!r}")
+    assert one("metrics.tls: cannot load cert_file")
+    assert one("metrics.basic_auth.password_file:").endswith("is empty; put the password on its "
+                                                             "first line")
+    assert one("metrics.listen: cannot resolve host 'no.such.host.invalid' (")
+    assert one("models[0].training.learning_rate: -1.0 is out of range")
+    assert len(lines) == 7, lines
+
+
+def test_check_accepts_good_tls_files_and_neither_connects_nor_writes(tmp_path, pki):
+    import socket
+    private_file(tmp_path, "broker.pass", "pump-station-7\n")
+    private_file(tmp_path, "metrics.pass", "scrape\n")
+    # A broker port that notes any connection, and a metrics port already held (by a running
+    # daemon, say): check must neither connect to the one nor bind the other.
+    with socket.socket() as broker, socket.socket() as held:
+        broker.bind(("127.0.0.1", 0))
+        broker.listen(1)
+        held.bind(("127.0.0.1", 0))
+        held.listen(1)
+        path = write(tmp_path, f"""\
+broker:
+  host: 127.0.0.1
+  port: {broker.getsockname()[1]}
+  username: edge
+  password_file: broker.pass
+  tls: {{ca_file: {pki.ca_file}, cert_file: {pki.client_cert}, key_file: {pki.client_key}}}
+metrics:
+  listen: "localhost:{held.getsockname()[1]}"
+  tls: {{cert_file: {pki.server_cert}, key_file: {pki.server_key}}}
+  basic_auth: {{username: prom, password_file: metrics.pass}}
+state_dir: state
+""" + MODEL)
+        before = sorted(os.listdir(tmp_path))
+        res = edgeprop("check", "-c", path)
+        assert res.returncode == 0, res.stderr
+        broker.setblocking(False)
+        with pytest.raises(BlockingIOError):
+            broker.accept()
+    assert sorted(os.listdir(tmp_path)) == before          # no state directory, nothing else
+
+
+def test_check_refuses_a_state_dir_every_user_may_write_as_run_does(tmp_path):
+    state = tmp_path / "state"
+    state.mkdir()
+    state.chmod(0o777)
+    path = write(tmp_path, "state_dir: state\nmetrics: {listen: null}\n" + MODEL)
+    res = edgeprop("check", "-c", path)
+    assert res.returncode == 2
+    assert problem_lines(res.stderr) == [
+        f"state_dir: state directory {state} is writable by every user (mode 0o777); anyone "
+        f"could replace the model's weights. Fix it with: chmod o-w {state}"]
 
 
 def test_run_refuses_an_empty_password_file_before_connecting(tmp_path):
