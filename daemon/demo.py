@@ -31,6 +31,7 @@ import paho.mqtt.client as mqtt
 import yaml
 
 from .cli import CAUTION
+from .cli_files import output_dir
 from .control import request
 from .errors import ConfigError, ControlError, EdgepropError
 from .demo_view import View, _report, scenario_times
@@ -268,6 +269,7 @@ def run_demo(args: argparse.Namespace) -> int:
     if external is None:
         require("amqtt", "the embedded MQTT broker of the demo")
     require("matplotlib", "the demo's plot")
+    output_dir("--out", args.out, "a directory for the plot and summary (created if missing)")
     out = os.path.abspath(args.out)
     try:
         os.makedirs(out, exist_ok=True)

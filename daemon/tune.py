@@ -16,9 +16,10 @@ from typing import Sequence
 
 import numpy as np
 
+from .cli_files import input_file
 from .config import load_config
 from .errors import ConfigError, EdgepropError
-from .replay import replay
+from .replay import CAPTURE_EXPECTED, replay
 from .settings import Settings
 
 WINDOWS = 10        # the worst moving window spans a tenth of the predictions
@@ -102,8 +103,7 @@ def run_tune(args: argparse.Namespace) -> int:
     settings = load_config(args.config)
     rates = parse_list(args.learning_rates, float, "--learning-rates")
     batches: Sequence[int | None] = parse_list(args.batch_sizes, int, "--batch-sizes") or [None]
-    if not os.path.isfile(args.capture):
-        raise EdgepropError(f"--capture {args.capture}: no such file")
+    input_file("--capture", args.capture, CAPTURE_EXPECTED)
     grid = [(lr, b) for lr in rates for b in batches]
     jobs = max(1, min(args.jobs or os.cpu_count() or 1, len(grid)))
     with ProcessPoolExecutor(max_workers=jobs) as pool:

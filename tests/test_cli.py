@@ -405,3 +405,87 @@ def test_run_refuses_an_empty_password_file_before_connecting(tmp_path):
     assert res.returncode == 2, res.stderr
     assert (f"broker.password_file: {secret!r} is empty; write the broker password into it"
             in res.stderr)
+
+
+# ---- file arguments: a directory, a missing file and an unreadable one each say so -------------
+
+CAPTURE_EXPECTED = "expected a capture file written by `edgeprop record`"
+
+
+@pytest.fixture
+def replay_setup(tmp_path):
+    """A config and an empty capture file (replays in no time)."""
+    config = write(tmp_path, "metrics: {listen: null}\n" + MODEL)
+    capture = tmp_path / "cap.jsonl"
+    capture.write_text("")
+    return config, str(capture)
+
+
+@pytest.mark.parametrize("command", ["replay", "tune"])
+def test_capture_argument_that_is_a_directory_or_missing_says_which(tmp_path, replay_setup, command):
+    config, _ = replay_setup
+    extra = ["--out", str(tmp_path / "o.jsonl")] if command == "replay" else ["--learning-rates", "0.01"]
+    for capture, what in ((tmp_path, "is a directory"), (tmp_path / "none.jsonl", "no such file")):
+        res = edgeprop(command, "-c", config, "--capture", str(capture), *extra)
+        assert res.returncode == 1, res.stderr
+        assert f"edgeprop: --capture {capture}: {what}; {CAPTURE_EXPECTED}\n" == res.stderr
+
+
+def test_capture_argument_that_is_no_regular_file_says_so(tmp_path, replay_setup):
+    config, _ = replay_setup
+    fifo = tmp_path / "fifo"
+    os.mkfifo(fifo)
+    res = edgeprop("replay", "-c", config, "--capture", str(fifo), "--out", str(tmp_path / "o.jsonl"),
+                   timeout=10)
+    assert res.returncode == 1
+    assert res.stderr == f"edgeprop: --capture {fifo}: is not a regular file; {CAPTURE_EXPECTED}\n"
+
+
+@pytest.mark.skipif(os.geteuid() == 0, reason="root reads files whatever their mode")
+def test_capture_argument_that_cannot_be_read_says_why(tmp_path, replay_setup):
+    config, capture = replay_setup
+    os.chmod(capture, 0)
+    res = edgeprop("replay", "-c", config, "--capture", capture, "--out", str(tmp_path / "o.jsonl"))
+    assert res.returncode == 1
+    assert res.stderr == (f"edgeprop: --capture {capture}: cannot read it (Permission denied); "
+                          f"{CAPTURE_EXPECTED}\n")
+
+
+def test_replay_output_paths_are_checked_before_replaying(tmp_path, replay_setup):
+    config, capture = replay_setup
+    existing = tmp_path / "report.png"
+    existing.write_text("")
+    cases = [
+        (["--out", str(tmp_path)], f"--out {tmp_path}: is a directory; expected a file name for "
+                                   f"the published messages"),
+        (["--out", str(tmp_path / "no" / "o.jsonl")],
+         f"--out {tmp_path / 'no' / 'o.jsonl'}: directory {tmp_path / 'no'} does not exist; "
+         f"expected a file name for the published messages"),
+        (["--out", str(tmp_path / "o.jsonl"), "--report", str(existing)],
+         f"--report {existing}: exists and is not a directory; expected a directory for the "
+         f"plot and summary"),
+    ]
+    for args, message in cases:
+        res = edgeprop("replay", "-c", config, "--capture", capture, *args)
+        assert res.returncode == 1, (args, res.stdout, res.stderr)
+        assert res.stderr.startswith(f"edgeprop: {message}"), (args, res.stderr)
+        assert not (tmp_path / "o.jsonl").exists()
+
+
+def test_record_out_that_is_a_directory_says_so_before_connecting(tmp_path):
+    # port 1: were it to connect first, the error would be an unreachable broker
+    config = write(tmp_path, "broker: {host: 127.0.0.1, port: 1}\nmetrics: {listen: null}\n" + MODEL)
+    res = edgeprop("record", "-c", config, "--out", str(tmp_path), "--count", "1")
+    assert res.returncode == 1
+    assert res.stderr.startswith(f"edgeprop: --out {tmp_path}: is a directory; expected a new "
+                                 f"file name for the capture"), res.stderr
+
+
+def test_demo_out_that_is_a_file_says_so(tmp_path):
+    taken = tmp_path / "demo"
+    taken.write_text("")
+    res = edgeprop("demo", "--out", str(taken), "--broker", "127.0.0.1:1")
+    assert res.returncode == 1
+    assert res.stderr.startswith(f"edgeprop: --out {taken}: exists and is not a directory; "
+                                 f"expected a directory for the plot and summary"), res.stderr
+
