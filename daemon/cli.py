@@ -3,10 +3,11 @@
 from __future__ import annotations
 
 import argparse
+import math
 import os
 import signal
 import sys
-from typing import Sequence
+from typing import Callable, Sequence
 
 from . import __version__
 from .errors import ConfigError, EdgepropError
@@ -23,6 +24,28 @@ class _Parser(argparse.ArgumentParser):
     def error(self, message: str) -> None:     # argparse exits 2 too; keep its wording
         self.print_usage(sys.stderr)
         self.exit(EXIT_USAGE, f"{self.prog}: error: {message}\n")
+
+
+def above_zero(kind: type, allowed: str) -> Callable[[str], float]:
+    """An argparse type: a finite number above zero of ``kind`` (int or float).
+
+    Zero, negative and non-finite values would be accepted by float and int yet make no sense
+    for a duration, a count or a number of processes (``record --duration -5`` recorded nothing
+    and exited 0); refused here they are a usage error naming what is allowed.
+    """
+    def parse(text: str) -> float:
+        try:
+            value = kind(text)
+        except ValueError:
+            noun = "an integer" if kind is int else "a number"
+            raise argparse.ArgumentTypeError(f"{text!r} is not {noun}; allowed {allowed}") from None
+        if not (math.isfinite(value) and value > 0):
+            raise argparse.ArgumentTypeError(f"{text!r} is out of range; allowed {allowed}")
+        return value
+    return parse
+
+
+SECONDS = above_zero(float, "a number of seconds > 0")
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -52,15 +75,17 @@ def build_parser() -> argparse.ArgumentParser:
     sp = cmd("save-now", "checkpoint now (the running daemon)")
     sp.add_argument("--model", help="only this model")
     sp = cmd("demo", "see edgeprop learn a simulated pumping station, in one command", config=False)
-    sp.add_argument("--duration", type=float, default=90.0, help="real seconds to run (default 90)")
-    sp.add_argument("--speed", type=float, default=3600.0,
+    sp.add_argument("--duration", type=SECONDS, default=90.0, help="real seconds to run (default 90)")
+    sp.add_argument("--speed", type=above_zero(float, "simulated seconds per real second, > 0"),
+                    default=3600.0,
                     help="simulated seconds per real second (default 3600: 90 s show 3.75 days)")
     sp.add_argument("--out", default="edgeprop-demo", help="directory for the plot and summary")
     sp.add_argument("--broker", metavar="HOST:PORT", help="use this broker instead of an embedded one")
     sp = cmd("record", "capture the traffic of the config's topics to a file")
     sp.add_argument("--out", required=True)
-    sp.add_argument("--duration", type=float)
-    sp.add_argument("--count", type=int)
+    sp.add_argument("--duration", type=SECONDS, help="stop after this many seconds")
+    sp.add_argument("--count", type=above_zero(int, "an integer > 0"),
+                    help="stop after this many messages")
     sp = cmd("replay", "run a capture through the daemon's own path, faster than real time")
     sp.add_argument("--capture", required=True)
     sp.add_argument("--out", required=True, help="published messages as JSON lines")
@@ -69,7 +94,8 @@ def build_parser() -> argparse.ArgumentParser:
     sp.add_argument("--capture", required=True)
     sp.add_argument("--learning-rates", required=True, help="comma-separated, e.g. 0.001,0.01,0.1")
     sp.add_argument("--batch-sizes", help="comma-separated, e.g. 16,32")
-    sp.add_argument("--jobs", type=int, help="parallel processes (default: CPU count)")
+    sp.add_argument("--jobs", type=above_zero(int, "an integer > 0"),
+                    help="parallel processes (default: CPU count)")
     return p
 
 

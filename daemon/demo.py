@@ -15,7 +15,6 @@ import argparse
 import contextlib
 import importlib.util
 import json
-import math
 import os
 import shutil
 import signal
@@ -261,10 +260,6 @@ def _stop_daemon(daemon: Child) -> None:
 
 def run_demo(args: argparse.Namespace) -> int:
     """``edgeprop demo``: run, show, stop in order, write the report; print its paths."""
-    if not (args.duration > 0 and math.isfinite(args.duration)):
-        raise ConfigError([f"--duration: {args.duration!r} must be a positive number of seconds"])
-    if not (args.speed > 0 and math.isfinite(args.speed)):
-        raise ConfigError([f"--speed: {args.speed!r} must be a positive number (simulated s per real s)"])
     external = parse_broker(args.broker) if args.broker else None
     if external is None:
         require("amqtt", "the embedded MQTT broker of the demo")

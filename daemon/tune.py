@@ -93,8 +93,8 @@ def parse_list(text: str | None, kind: type, name: str) -> list:
         values = [kind(v) for v in text.split(",") if v.strip()]
     except ValueError:
         raise ConfigError([f"{name}: {text!r} is not a comma-separated list of {kind.__name__} values"]) from None
-    if not values or any(v <= 0 for v in values):
-        raise ConfigError([f"{name}: {text!r}: every value must be > 0"])
+    if not values or not all(math.isfinite(v) and v > 0 for v in values):
+        raise ConfigError([f"{name}: {text!r}: every value must be a finite number > 0"])
     return values
 
 

@@ -489,3 +489,43 @@ def test_demo_out_that_is_a_file_says_so(tmp_path):
     assert res.stderr.startswith(f"edgeprop: --out {taken}: exists and is not a directory; "
                                  f"expected a directory for the plot and summary"), res.stderr
 
+
+# ---- numeric arguments: zero, negative and non-finite values are usage errors ------------------
+
+@pytest.mark.parametrize("args, option", [
+    (["record", "--out", "x.jsonl", "--duration", "-5"], "--duration"),
+    (["record", "--out", "x.jsonl", "--duration", "0"], "--duration"),
+    (["record", "--out", "x.jsonl", "--duration", "nan"], "--duration"),
+    (["record", "--out", "x.jsonl", "--duration", "inf"], "--duration"),
+    (["record", "--out", "x.jsonl", "--count", "0"], "--count"),
+    (["record", "--out", "x.jsonl", "--count", "-3"], "--count"),
+    (["tune", "--capture", "c.jsonl", "--learning-rates", "0.01", "--jobs", "0"], "--jobs"),
+    (["tune", "--capture", "c.jsonl", "--learning-rates", "0.01", "--jobs", "-2"], "--jobs"),
+    (["demo", "--duration", "-1"], "--duration"),
+    (["demo", "--speed", "0"], "--speed"),
+    (["demo", "--speed", "inf"], "--speed"),
+])
+def test_numeric_arguments_out_of_range_are_usage_errors(tmp_path, args, option):
+    config = write(tmp_path, "broker: {host: 127.0.0.1, port: 1}\nmetrics: {listen: null}\n" + MODEL)
+    full = args[:1] + (["-c", config] if args[0] != "demo" else []) + args[1:]
+    res = edgeprop(*full, cwd=str(tmp_path))
+    assert res.returncode == 2, res.stderr
+    value = args[args.index(option) + 1]
+    assert f"error: argument {option}: {value!r} is out of range; allowed " in res.stderr, res.stderr
+    assert res.stdout == "" and not (tmp_path / "x.jsonl").exists()
+
+
+def test_numeric_argument_that_is_no_number_names_what_is_allowed(tmp_path):
+    config = write(tmp_path, MODEL)
+    res = edgeprop("record", "-c", config, "--out", "x.jsonl", "--count", "1.5", cwd=str(tmp_path))
+    assert res.returncode == 2
+    assert "error: argument --count: '1.5' is not an integer; allowed an integer > 0" in res.stderr
+
+
+@pytest.mark.parametrize("rates", ["0.01,nan", "inf"])
+def test_learning_rates_must_be_finite(tmp_path, rates):
+    config = write(tmp_path, MODEL)
+    res = edgeprop("tune", "-c", config, "--capture", str(tmp_path / "none.jsonl"),
+                   "--learning-rates", rates)
+    assert res.returncode == 2, res.stderr
+    assert f"--learning-rates: {rates!r}: every value must be a finite number > 0" in res.stderr
