@@ -1,9 +1,10 @@
 """What the broker connection needs from disk, checked before anything connects.
 
-The password file (refused when group or others may read it) and the client TLS context.
-The worker checks them before it starts the link process, so a bad password file or
-certificate stops ``edgeprop run`` at once with exit code 2 and a message naming the key;
-the link process reads them again to connect.
+The password file (refused when group or others may read it, or when it is empty) and the
+client TLS context. The worker checks them before it starts the link process, so a bad
+password file or certificate stops ``edgeprop run`` at once with exit code 2 and a message
+naming the key; the link process reads them again to connect. ``edgeprop check`` runs the same
+loading through ``link_file_problems``, so it passes only what ``run`` accepts.
 """
 from __future__ import annotations
 
@@ -34,27 +35,44 @@ def read_password_file(path: str) -> str:
         raise ConfigError([f"broker.password_file: {path!r} is not UTF-8 text"]) from exc
     for ending in ("\r\n", "\n"):          # editors add one trailing newline; strip just that
         if text.endswith(ending):
-            return text[: -len(ending)]
+            text = text[: -len(ending)]
+            break
+    if not text:      # never meant: the broker would refuse it with a bare "not authorized"
+        raise ConfigError([f"broker.password_file: {path!r} is empty; write the broker password "
+                           f"into it"])
     return text
 
 
 def tls_context(tls: TlsSettings) -> ssl.SSLContext:
     """A client TLS context: TLS 1.2 or newer, broker certificate and host name verified."""
+    problems = []
     try:
         context = ssl.create_default_context(ssl.Purpose.SERVER_AUTH, cafile=tls.ca_file)
     except (OSError, ssl.SSLError) as exc:
-        raise ConfigError([f"broker.tls.ca_file: cannot load CA certificates from {tls.ca_file!r}: {exc}"]) from exc
+        problems.append(f"broker.tls.ca_file: cannot load CA certificates from {tls.ca_file!r}: "
+                        f"{exc}; expected the PEM certificate(s) of the CA that signed the "
+                        f"broker's certificate")
+        # a bare context still tries the client certificate, so both problems show at once
+        context = ssl.SSLContext(ssl.PROTOCOL_TLS_CLIENT)
     context.minimum_version = ssl.TLSVersion.TLSv1_2
-    if tls.key_file and not tls.cert_file:
-        raise ConfigError(["broker.tls.key_file is set but broker.tls.cert_file is not; give both or neither"])
-    if tls.cert_file:
-        try:
-            context.load_cert_chain(tls.cert_file, tls.key_file)
-        except (OSError, ssl.SSLError) as exc:
-            raise ConfigError([
-                f"broker.tls.cert_file/key_file: cannot load client certificate {tls.cert_file!r} "
-                f"with key {tls.key_file or tls.cert_file!r}: {exc}"]) from exc
+    problems += _client_certificate_problems(context, tls)
+    if problems:
+        raise ConfigError(problems)
     return context
+
+
+def _client_certificate_problems(context: ssl.SSLContext, tls: TlsSettings) -> list[str]:
+    if tls.key_file and not tls.cert_file:
+        return ["broker.tls.key_file is set but broker.tls.cert_file is not; give both or neither"]
+    if not tls.cert_file:
+        return []
+    try:
+        context.load_cert_chain(tls.cert_file, tls.key_file)
+    except (OSError, ssl.SSLError) as exc:
+        return [f"broker.tls.cert_file/key_file: cannot load client certificate {tls.cert_file!r} "
+                f"with key {tls.key_file or tls.cert_file!r}: {exc}; expected the client "
+                f"certificate and its private key (unencrypted) as PEM files"]
+    return []
 
 
 def check_protocol_and_user(settings: BrokerSettings) -> None:
@@ -64,6 +82,22 @@ def check_protocol_and_user(settings: BrokerSettings) -> None:
         raise ConfigError(["broker.password_file is set but broker.username is not; set both"])
 
 
+def link_file_problems(password_file: str | None, tls: TlsSettings | None) -> list[str]:
+    """Every problem loading the password file and TLS files, as ``run`` loads them to connect."""
+    problems: list[str] = []
+    if password_file:
+        try:
+            read_password_file(password_file)
+        except ConfigError as exc:
+            problems += exc.problems
+    if tls is not None:
+        try:
+            tls_context(tls)
+        except ConfigError as exc:
+            problems += exc.problems
+    return problems
+
+
 def check_link_settings(settings: BrokerSettings) -> None:
     """Raise ConfigError for broker settings no connection could use (protocol, password, TLS files).
 
@@ -71,7 +105,6 @@ def check_link_settings(settings: BrokerSettings) -> None:
     password file or certificate stops ``edgeprop run`` at once with exit code 2.
     """
     check_protocol_and_user(settings)
-    if settings.password_file:
-        read_password_file(settings.password_file)
-    if settings.tls is not None:
-        tls_context(settings.tls)
+    problems = link_file_problems(settings.password_file, settings.tls)
+    if problems:
+        raise ConfigError(problems)

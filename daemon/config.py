@@ -12,7 +12,7 @@ import os
 import yaml
 
 from daemon import settings as S
-from daemon.errors import ConfigError
+from daemon.errors import CheckpointError, ConfigError
 from daemon.config_kinds import (  # noqa: F401  (show is public API)
     BAD,
     INLINE_PASSWORD,
@@ -59,6 +59,42 @@ def _broker(values, raw, path, ctx):
     if raw.get("password_file") is not None and values["username"] is None:
         ctx.bad(_join(path, "username"), "required key is missing; password_file is set, "
                                          "so give the username it belongs to")
+
+
+# ---- with preflight (edgeprop check): what run loads or looks up before it connects ----------
+# Each reports through the module that does the loading at run time, so check and run agree.
+# None writes, binds or connects; they are kept out of plain loads so that a reload or an
+# operator command does not depend on name lookup or on certificates it does not use.
+
+def _broker_files(values, raw, path, ctx):
+    if not ctx.preflight:
+        return
+    from daemon.broker_access import link_file_problems
+    password_file = values["password_file"] if _ok(values, "password_file") else None
+    tls = values["tls"] if isinstance(values["tls"], S.TlsSettings) else None
+    ctx.problems.extend(link_file_problems(password_file, tls))
+
+
+def _metrics_endpoint(values, raw, path, ctx):
+    if not ctx.preflight:
+        return
+    from daemon.metrics_http import endpoint_problems
+    listen = values["listen"] if _ok(values, "listen") else None
+    tls = values["tls"] if isinstance(values["tls"], S.MetricsTls) else None
+    auth = values["basic_auth"] if isinstance(values["basic_auth"], S.MetricsAuth) else None
+    ctx.problems.extend(endpoint_problems(listen, tls, auth))
+
+
+def _state_dir_in_place(values, raw, path, ctx):
+    """Only a state_dir that exists is checked, so check creates none (run would create it)."""
+    state_dir = values["state_dir"]
+    if not ctx.preflight or state_dir is BAD or not os.path.isdir(state_dir):
+        return
+    from daemon.checkpoints import ensure_private_dir
+    try:
+        ensure_private_dir(state_dir)
+    except CheckpointError as exc:
+        ctx.bad("state_dir", str(exc))
 
 
 def _training(values, raw, path, ctx):
@@ -235,7 +271,7 @@ SCHEMA = _Section(S.Settings, {
         "queue_size": _Int(1, 10_000_000),
         "queue_bytes": _Int(65536, 2**31 - 1),
         "max_payload_bytes": _Int(1, 268_435_455),   # MQTT 3.1.1 section 2.2.3 maximum
-    }, checks=(_broker,), refused={"password": INLINE_PASSWORD}),
+    }, checks=(_broker, _broker_files), refused={"password": INLINE_PASSWORD}),
     "state_dir": _Path(is_dir=True),
     "checkpoints": _Section(S.CheckpointSettings, {
         "every_s": _POS,
@@ -252,11 +288,11 @@ SCHEMA = _Section(S.Settings, {
             "username": _Str(),
             "password_file": _Path(must_exist=True, secret=True),
         }, nullable=True, refused={"password": INLINE_PASSWORD}),
-    }),
+    }, checks=(_metrics_endpoint,)),
     "control": _Section(S.ControlSettings, {"socket": _Path()}),
     "logging": _Section(S.LoggingSettings, {"level": _Choice("debug", "info", "warning", "error")}),
     "models": _ListOf(_MODEL, "model"),
-}, checks=(_root,))
+}, checks=(_root, _state_dir_in_place))
 
 
 # ---- public API ------------------------------------------------------------------------------
@@ -285,8 +321,13 @@ class _Loader(yaml.SafeLoader):
         return super().construct_mapping(node, deep=deep)
 
 
-def load_config(path: str) -> S.Settings:
-    """Read and validate the YAML config at ``path``; relative paths in it start at its directory."""
+def load_config(path: str, preflight: bool = False) -> S.Settings:
+    """Read and validate the YAML config at ``path``; relative paths in it start at its directory.
+
+    With ``preflight`` (``edgeprop check``), also report what ``run`` would refuse on disk before
+    it connects: password and TLS files that do not load, a metrics host that does not resolve,
+    an existing state_dir every user may write to.
+    """
     try:
         with open(path, encoding="utf-8") as fh:
             text = fh.read()
@@ -319,7 +360,7 @@ def load_config(path: str) -> S.Settings:
         raise ConfigError([f"{path}: the file is empty; it needs at least 'models'"])
     repeated = [f"{path}: {d}" for d in loader.duplicates]
     try:
-        settings = parse_config(raw, os.path.dirname(os.path.abspath(path)))
+        settings = parse_config(raw, os.path.dirname(os.path.abspath(path)), preflight)
     except ConfigError as exc:
         raise ConfigError(repeated + exc.problems) from None
     except RecursionError:     # deep structures under a key that is validated or shown
@@ -330,9 +371,12 @@ def load_config(path: str) -> S.Settings:
     return settings
 
 
-def parse_config(raw: object, base_dir: str | None = None) -> S.Settings:
-    """Validate a plain mapping (as YAML gives it) into ``Settings``, or raise every problem found."""
-    ctx = _Ctx(base_dir)
+def parse_config(raw: object, base_dir: str | None = None, preflight: bool = False) -> S.Settings:
+    """Validate a plain mapping (as YAML gives it) into ``Settings``, or raise every problem found.
+
+    ``preflight`` as for ``load_config``.
+    """
+    ctx = _Ctx(base_dir, preflight)
     if not isinstance(raw, dict):
         _wrong(raw, "a mapping with keys such as node, broker and models", "", ctx)
         raise ConfigError(ctx.problems)

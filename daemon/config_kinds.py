@@ -35,10 +35,12 @@ INLINE_PASSWORD = ("an inline password is refused: put the password alone in a f
 
 
 class _Ctx:
-    """Where relative paths start, and the problems found so far."""
+    """Where relative paths start, whether to check like ``run`` does before it connects
+    (``preflight``), and the problems found so far."""
 
-    def __init__(self, base_dir: str | None) -> None:
+    def __init__(self, base_dir: str | None, preflight: bool = False) -> None:
         self.base_dir = base_dir
+        self.preflight = preflight
         self.problems: list[str] = []
 
     def bad(self, path: str, message: str) -> _Bad:
@@ -243,12 +245,27 @@ class _IntList:
         return BAD if BAD in items else items
 
 
+# An input's history is bounded by a count of readings (align.history), not by an age, so no
+# setting says how far back a lag can reach. 30 days is a plain sanity limit (common practice,
+# no source): far beyond any lag a soft sensor uses, and it refuses values such as 1e300 that
+# would skip every sample as stale.
+MAX_LAG_S = 30 * 86400
+
+
+def _lag(v, path, ctx):
+    lag = _Float(0)(v, path, ctx)
+    if lag is not BAD and lag > MAX_LAG_S:
+        return ctx.bad(path, f"{show(lag)} is out of range; allowed [0, {MAX_LAG_S}] seconds "
+                             f"(30 days)")
+    return lag
+
+
 def _lags(v, path, ctx):
     if not isinstance(v, (list, tuple)):
         return _wrong(v, "a list of lags in seconds like [0, 30]", path, ctx)
     if not 1 <= len(v) <= 64:
         return ctx.bad(path, f"{show(list(v))} has {len(v)} lags; allowed 1 to 64")
-    items = tuple(_Float(0)(x, f"{path}[{i}]", ctx) for i, x in enumerate(v))
+    items = tuple(_lag(x, f"{path}[{i}]", ctx) for i, x in enumerate(v))
     if BAD in items:
         return BAD
     for i, lag in enumerate(items):

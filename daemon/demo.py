@@ -19,7 +19,6 @@ import argparse
 import contextlib
 import importlib.util
 import json
-import math
 import os
 import shutil
 import signal
@@ -35,6 +34,7 @@ import paho.mqtt.client as mqtt
 import yaml
 
 from .cli import CAUTION
+from .cli_files import output_dir
 from .control import request
 from .errors import ConfigError, ControlError, EdgepropError
 from .demo_view import View, _report, scenario_times
@@ -293,14 +293,11 @@ def _stop_daemon(daemon: Child) -> None:
 
 def run_demo(args: argparse.Namespace) -> int:
     """``edgeprop demo``: run, show, stop in order, write the report; print its paths."""
-    if not (args.duration > 0 and math.isfinite(args.duration)):
-        raise ConfigError([f"--duration: {args.duration!r} must be a positive number of seconds"])
-    if not (args.speed > 0 and math.isfinite(args.speed)):
-        raise ConfigError([f"--speed: {args.speed!r} must be a positive number (simulated s per real s)"])
     external = parse_broker(args.broker) if args.broker else None
     if external is None:
         require("amqtt", "the embedded MQTT broker of the demo")
     require("matplotlib", "the demo's plot")
+    output_dir("--out", args.out, "a directory for the plot and summary (created if missing)")
     out = os.path.abspath(args.out)
     try:
         os.makedirs(out, exist_ok=True)

@@ -22,7 +22,7 @@ from prometheus_client import CollectorRegistry, make_wsgi_app, start_http_serve
 from prometheus_client.exposition import ThreadingWSGIServer
 
 from daemon.errors import ConfigError, EdgepropError
-from daemon.settings import MetricsSettings
+from daemon.settings import MetricsAuth, MetricsSettings, MetricsTls
 
 
 # --- HTTP endpoint ----------------------------------------------------------------------------
@@ -113,8 +113,47 @@ def _tls_context(cert_file: str, key_file: str) -> ssl.SSLContext:
         ctx.load_cert_chain(cert_file, key_file)
     except (OSError, ssl.SSLError) as e:
         raise ConfigError([f"metrics.tls: cannot load cert_file {cert_file} / key_file "
-                           f"{key_file}: {e}"]) from e
+                           f"{key_file}: {e}; expected the server certificate and its private "
+                           f"key (unencrypted) as PEM files"]) from e
     return ctx
+
+
+def resolve_listen_host(listen: str) -> None:
+    """Raise ConfigError when the host of ``listen`` does not resolve, as ``serve`` would fail.
+
+    Only the name is looked up: binding the port here could fail merely because the running
+    daemon holds it.
+    """
+    host, port = parse_listen(listen)
+    try:
+        socket.getaddrinfo(host, port, type=socket.SOCK_STREAM, flags=socket.AI_PASSIVE)
+    except (socket.gaierror, UnicodeError) as e:
+        reason = getattr(e, "strerror", None) or e
+        raise ConfigError([f"metrics.listen: cannot resolve host {host!r} ({reason}); give a "
+                           f"host name this machine resolves or an address such as "
+                           f"127.0.0.1, or null to turn the endpoint off"]) from None
+
+
+def endpoint_problems(listen: Optional[str], tls: Optional[MetricsTls],
+                      basic_auth: Optional[MetricsAuth]) -> list[str]:
+    """Every problem ``serve`` would meet on disk and in name lookup, without starting it.
+
+    ``edgeprop check`` reports these, so a config it passes does not fail at start.
+    """
+    steps: list[tuple[Callable, tuple]] = []
+    if listen is not None:
+        steps.append((resolve_listen_host, (listen,)))
+    if tls is not None:
+        steps.append((_tls_context, (tls.cert_file, tls.key_file)))
+    if basic_auth is not None:
+        steps.append((read_password, (basic_auth.password_file,)))
+    problems: list[str] = []
+    for step, args in steps:
+        try:
+            step(*args)
+        except ConfigError as e:
+            problems += e.problems
+    return problems
 
 
 def _basic_auth(app: Callable, username: str, password: str) -> Callable:

@@ -15,6 +15,7 @@ from typing import Callable, Optional, Protocol
 
 import paho.mqtt.client as mqtt
 
+from .broker_access import read_password_file
 from .capture import CaptureWriter
 from .errors import EdgepropError
 from .settings import BrokerSettings, Settings
@@ -36,22 +37,14 @@ def recorded_topics(settings: Settings) -> list[str]:
     return topics
 
 
-def _read_password(path: str) -> str:
-    try:
-        with open(path, encoding="utf-8") as f:
-            return f.read().rstrip("\r\n")
-    except OSError as e:
-        raise EdgepropError(f"cannot read broker.password_file {path}: {e.strerror}") from e
-
-
 def _make_client(settings: Settings) -> mqtt.Client:
     b: BrokerSettings = settings.broker
     # Its own client id: reusing the daemon's would make the broker drop the running daemon.
     client_id = f"{b.client_id or 'edgeprop-' + settings.node}-record-{os.getpid()}"
     protocol = mqtt.MQTTv5 if b.protocol == "5" else mqtt.MQTTv311
     client = mqtt.Client(mqtt.CallbackAPIVersion.VERSION2, client_id=client_id, protocol=protocol)
-    if b.username is not None:
-        client.username_pw_set(b.username, _read_password(b.password_file) if b.password_file else None)
+    if b.username is not None:     # read as run reads it, so record sends what run would send
+        client.username_pw_set(b.username, read_password_file(b.password_file) if b.password_file else None)
     if b.tls is not None:
         client.tls_set(ca_certs=b.tls.ca_file, certfile=b.tls.cert_file, keyfile=b.tls.key_file)
     client.reconnect_delay_set(max(1, round(b.reconnect_min_s)), max(1, round(b.reconnect_max_s)))

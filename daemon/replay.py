@@ -17,7 +17,6 @@ from __future__ import annotations
 import argparse
 import json
 import math
-import os
 import sys
 import time
 from dataclasses import dataclass, field
@@ -26,6 +25,7 @@ from typing import IO, Callable, Optional
 import numpy as np
 
 from .capture import BadLine, read_capture
+from .cli_files import input_file, output_dir, output_file
 from .config import load_config
 from .engine import Engine
 from .errors import EdgepropError, PayloadError, SampleSkipped
@@ -34,6 +34,8 @@ from .report import accuracy, log_loss_terms
 from .settings import Settings
 
 PROGRESS_EVERY = 2000       # lines between progress updates
+CAPTURE_EXPECTED = "a capture file written by `edgeprop record`"
+REPORT_EXPECTED = "a directory for the plot and summary (created if missing)"
 
 
 @dataclass
@@ -234,11 +236,17 @@ def score_messages(messages: list[dict], engine: ReplayEngine) -> dict[str, dict
 def run_replay(args: argparse.Namespace) -> int:
     """``edgeprop replay``: write published messages as JSON lines and print a summary."""
     settings = load_config(args.config)
-    if not os.path.isfile(args.capture):
-        raise EdgepropError(f"--capture {args.capture}: no such file")
+    input_file("--capture", args.capture, CAPTURE_EXPECTED)
+    output_file("--out", args.out, "a file name for the published messages (JSON lines)")
+    if args.report:
+        output_dir("--report", args.report, REPORT_EXPECTED)
     messages: list[dict] = []
     progress = ProgressBar(count_lines(args.capture), sys.stderr) if sys.stderr.isatty() else None
-    with open(args.out, "w", encoding="utf-8") as out:
+    try:
+        out = open(args.out, "w", encoding="utf-8")
+    except OSError as exc:
+        raise EdgepropError(f"--out {args.out}: cannot create it ({exc.strerror or exc})") from None
+    with out:
         def sink(msg: dict) -> None:
             messages.append(msg)
             out.write(json.dumps(msg, separators=(",", ":")) + "\n")

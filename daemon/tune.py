@@ -21,9 +21,10 @@ from typing import Sequence
 
 import numpy as np
 
+from .cli_files import input_file
 from .config import load_config
 from .errors import ConfigError, EdgepropError
-from .replay import replay
+from .replay import CAPTURE_EXPECTED, replay
 from .report import log_loss_terms
 from .settings import ModelSettings, Settings
 
@@ -109,8 +110,8 @@ def parse_list(text: str | None, kind: type, name: str) -> list:
         values = [kind(v) for v in text.split(",") if v.strip()]
     except ValueError:
         raise ConfigError([f"{name}: {text!r} is not a comma-separated list of {kind.__name__} values"]) from None
-    if not values or any(v <= 0 for v in values):
-        raise ConfigError([f"{name}: {text!r}: every value must be > 0"])
+    if not values or not all(math.isfinite(v) and v > 0 for v in values):
+        raise ConfigError([f"{name}: {text!r}: every value must be a finite number > 0"])
     return values
 
 
@@ -119,8 +120,7 @@ def run_tune(args: argparse.Namespace) -> int:
     settings = load_config(args.config)
     rates = parse_list(args.learning_rates, float, "--learning-rates")
     batches: Sequence[int | None] = parse_list(args.batch_sizes, int, "--batch-sizes") or [None]
-    if not os.path.isfile(args.capture):
-        raise EdgepropError(f"--capture {args.capture}: no such file")
+    input_file("--capture", args.capture, CAPTURE_EXPECTED)
     grid = [(lr, b) for lr in rates for b in batches]
     jobs = max(1, min(args.jobs or os.cpu_count() or 1, len(grid)))
     with ProcessPoolExecutor(max_workers=jobs) as pool:

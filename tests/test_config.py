@@ -223,6 +223,12 @@ ERRORS = [
     ({"target": {"field": "value"}}, "models[0].target.topic: required key is missing"),
     ({"inputs": [{"name": "speed", "topic": "site/p1/speed", "lags_s": [0, -30]}]},
      "models[0].inputs[0].lags_s[1]: -30.0 is out of range; allowed >= 0"),
+    ({"inputs": [{"name": "speed", "topic": "site/p1/speed", "lags_s": [0, "1e300"]}]},
+     "models[0].inputs[0].lags_s[1]: 1e+300 is out of range; allowed [0, 2592000] seconds "
+     "(30 days)"),
+    ({"inputs": [{"name": "speed", "topic": "site/p1/speed", "lags_s": [2592000.5]}]},
+     "models[0].inputs[0].lags_s[0]: 2592000.5 is out of range; allowed [0, 2592000] seconds "
+     "(30 days)"),
     ({"inputs": [{"name": "speed", "topic": "site/p1/speed", "lags_s": [0, 30, 30]}]},
      "models[0].inputs[0].lags_s[2]: 30.0 appears twice in [0, 30, 30]; give each lag once"),
     ({"inputs": [{"name": "speed", "topic": "site/p1/speed", "lags_s": []}]},
@@ -338,11 +344,11 @@ def test_publish_topic_collisions():
 def test_accepted_forms():
     s = parse_config(with_model(training={"learning_rate": 1}, net={"hidden": []},
                                 align=None, inputs=[{"name": "bt", "topic": "site/p1/bearing_temp",
-                                                     "lags_s": [60, 120]}]))
+                                                     "lags_s": [60, 120, 2592000]}]))
     m = s.models[0]
     assert m.training.learning_rate == 1.0 and isinstance(m.training.learning_rate, float)
     assert m.net.hidden == () and m.align == S.AlignSettings()   # empty section: defaults
-    assert m.inputs[0].lags_s == (60.0, 120.0)          # lagged own target is autoregression
+    assert m.inputs[0].lags_s == (60.0, 120.0, 2592000.0)   # lagged own target is autoregression
     for given, kept in ((5, "5"), ("5", "5"), ("3.1.1", "3.1.1")):
         raw = copy.deepcopy(MINIMAL)
         raw["broker"] = {"protocol": given}

@@ -129,6 +129,20 @@ def test_password_from_file(broker_factory, tmp_path):
     assert not (tmp_path / "b.jsonl").exists()
 
 
+def test_empty_password_file_is_refused_before_connecting(tmp_path):
+    empty = tmp_path / "empty.pw"
+    empty.write_text("\n")
+    os.chmod(empty, 0o600)
+    out = tmp_path / "a.jsonl"
+    # port 1: were it to connect, the error would be an unreachable broker instead
+    err = Recorder(make_settings("127.0.0.1", 1, username="recorder", password_file=str(empty)),
+                   str(out), count=1).join()
+    assert isinstance(err, EdgepropError)
+    assert str(err).endswith(f"broker.password_file: {str(empty)!r} is empty; write the broker "
+                             f"password into it")
+    assert not out.exists()
+
+
 def test_existing_capture_is_not_overwritten(tmp_path):
     out = tmp_path / "cap.jsonl"
     out.write_text("days of plant traffic\n")
