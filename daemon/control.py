@@ -4,9 +4,7 @@ Protocol: one JSON object per line over a Unix stream socket, one request per
 connection. Requests ``{"cmd": "status"}``, ``{"cmd": "rollback", "model": M,
 "to": ID}``, ``{"cmd": "pin" | "unpin", "model": M, "id": ID}``,
 ``{"cmd": "save-now", "model": M or null}``; replies ``{"ok": true, "result":
-...}`` or ``{"ok": false, "error": "...", "logged": [...]}``, where ``logged``
-(present when not empty) holds the warning and error lines the worker logged
-while it handled the failed request, e.g. why a checkpoint could not be written.
+...}`` or ``{"ok": false, "error": "..."}``.
 
 The socket thread never touches model state: it queues a ``ControlRequest`` and
 waits for the worker thread, which owns the models, to answer it.
@@ -20,7 +18,6 @@ import queue
 import socket
 import stat
 import threading
-from contextlib import AbstractContextManager, nullcontext
 from typing import Any, Callable, Optional
 
 from daemon.checkpoints import LogFn, stderr_log
@@ -128,21 +125,13 @@ class ControlServer:
                 continue
             n += 1
             try:
-                req.reply(self._answer(req.payload, handle))
+                req.reply({"ok": True, "result": handle(req.payload)})
+            except EdgepropError as exc:
+                req.reply({"ok": False, "error": str(exc)})
             except Exception as exc:  # a control request must never stop the worker
                 self.log("error", "control_request_failed", cmd=req.payload.get("cmd"),
                          error=f"{type(exc).__name__}: {exc}")
                 req.reply({"ok": False, "error": f"internal error: {type(exc).__name__}: {exc}"})
-
-    def _answer(self, payload: dict, handle: Callable[[dict], Any]) -> dict:
-        with _problems_noted(self.log) as logged:
-            try:
-                return {"ok": True, "result": handle(payload)}
-            except EdgepropError as exc:
-                reply: dict = {"ok": False, "error": str(exc)}
-                if logged:
-                    reply["logged"] = list(logged)
-                return reply
 
     # ----- socket side ---------------------------------------------------------------
 
@@ -228,12 +217,6 @@ class ControlServer:
             os.unlink(self.path)
         except FileNotFoundError:
             pass
-
-
-def _problems_noted(log: LogFn) -> AbstractContextManager[list[str]]:
-    """``log.problems_noted()`` of a ``daemon.logs.Log``; a plain log function notes nothing."""
-    noted = getattr(log, "problems_noted", None)
-    return noted() if noted is not None else nullcontext([])
 
 
 def _read_line(conn: socket.socket, limit: int) -> tuple[Optional[bytes], Optional[str]]:

@@ -6,11 +6,10 @@ machine-splittable.
 """
 from __future__ import annotations
 
-import contextlib
 import sys
 import threading
 import time
-from typing import IO, Callable, Iterator
+from typing import IO, Callable
 
 LEVELS = {"debug": 10, "info": 20, "warning": 30, "error": 40}
 
@@ -31,25 +30,9 @@ class Log:
         self.threshold = LEVELS.get(level, 20)
         self.stream = stream
         self._lock = threading.Lock()
-        self._local = threading.local()      # per thread: the list ``problems_noted`` fills
 
     def set_level(self, level: str) -> None:
         self.threshold = LEVELS.get(level, 20)
-
-    @contextlib.contextmanager
-    def problems_noted(self) -> Iterator[list[str]]:
-        """Also collect the warning and error lines this thread logs within the block.
-
-        A control request that fails (a save-now whose write failed) can then hand the
-        operator the reason the worker logged, instead of sending them to the journal.
-        """
-        noted: list[str] = []
-        outer = getattr(self._local, "noted", None)
-        self._local.noted = noted
-        try:
-            yield noted
-        finally:
-            self._local.noted = outer
 
     def __call__(self, level: str, event: str, **fields: object) -> None:
         if LEVELS.get(level, 20) < self.threshold:
@@ -61,9 +44,6 @@ class Log:
         parts.append(f"event={event}")
         parts.extend(f"{k}={_fmt(v)}" for k, v in fields.items() if v is not None)
         line = " ".join(parts) + "\n"
-        noted = getattr(self._local, "noted", None)
-        if noted is not None and LEVELS.get(level, 20) >= LEVELS["warning"]:
-            noted.append(line[:-1])
         stream = self.stream or sys.stderr
         with self._lock:
             try:

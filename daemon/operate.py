@@ -30,7 +30,7 @@ def operate(command: str, args: argparse.Namespace) -> int:
               file=sys.stderr)
         return _offline(command, args, settings)
     if not reply.get("ok"):
-        raise ControlError(_failure(reply))
+        raise ControlError(reply.get("error", "daemon refused the request"))
     result = reply["result"]
     if command == "checkpoints":
         _print_table(settings, args.model, in_use=result)
@@ -39,15 +39,6 @@ def operate(command: str, args: argparse.Namespace) -> int:
     else:
         print(json.dumps(result, indent=2))
     return 0
-
-
-def _failure(reply: dict) -> str:
-    """The daemon's error, with the problems it logged meanwhile (the reason, e.g. a full disk)."""
-    text = str(reply.get("error", "daemon refused the request"))
-    logged = reply.get("logged")
-    if isinstance(logged, list) and logged:
-        text += "".join(f"\n  daemon log: {line}" for line in logged)
-    return text
 
 
 def _payload(command: str, args: argparse.Namespace) -> dict:

@@ -529,23 +529,3 @@ def test_learning_rates_must_be_finite(tmp_path, rates):
                    "--learning-rates", rates)
     assert res.returncode == 2, res.stderr
     assert f"--learning-rates: {rates!r}: every value must be a finite number > 0" in res.stderr
-
-
-# ---- a failed save-now says why ------------------------------------------------------------------
-
-def test_save_now_failure_shows_the_reason_the_daemon_logged(broker, tmp_path):
-    from daemon_proc import Daemon, cli, write_config
-    cfg = write_config(tmp_path, broker)
-    d = Daemon(cfg)
-    try:
-        d.wait_ready()
-        model_dir = tmp_path / "state" / "m1"
-        model_dir.rename(tmp_path / "state" / "m1.away")
-        model_dir.write_text("")               # the model's directory is now a plain file
-        res = cli(cfg, "save-now")
-    finally:
-        d.stop()
-    assert res.returncode == 1, res.stdout
-    assert res.stderr.startswith("edgeprop: saving 'm1' failed"), res.stderr
-    reason = [line for line in res.stderr.splitlines()[1:] if "event=checkpoint_failed" in line]
-    assert len(reason) == 1 and "Not a directory" in reason[0], res.stderr
