@@ -80,7 +80,7 @@ def build_parser() -> argparse.ArgumentParser:
                     default=3600.0,
                     help="simulated seconds per real second (default 3600: 90 s show 3.75 days)")
     sp.add_argument("--out", default="edgeprop-demo", help="directory for the plot and summary")
-    sp.add_argument("--broker", metavar="HOST:PORT", help="use this broker instead of an embedded one")
+    sp.add_argument("--broker", metavar="HOST:PORT", help="use this broker (one that accepts anonymous clients on plain TCP) instead of an embedded one")
     sp = cmd("record", "capture the traffic of the config's topics to a file")
     sp.add_argument("--out", required=True)
     sp.add_argument("--duration", type=SECONDS, help="stop after this many seconds")
