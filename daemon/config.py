@@ -15,6 +15,7 @@ from daemon import settings as S
 from daemon.errors import CheckpointError, ConfigError
 from daemon.config_kinds import (  # noqa: F401  (show is public API)
     BAD,
+    seconds,
     INLINE_PASSWORD,
     SOCKET_PATH_MAX,
     _Choice,
@@ -190,9 +191,9 @@ _MODEL = _Section(S.ModelSettings, {
     "target": _Section(S.SourceSettings, dict(_SOURCE_KEYS)),
     "inputs": _ListOf(_INPUT, "input"),
     "align": _Section(S.AlignSettings, {
-        "max_age_s": _POS,
-        "late_tolerance_s": _Float(0),
-        "max_ahead_s": _POS,
+        "max_age_s": seconds(),
+        "late_tolerance_s": seconds(zero_allowed=True),
+        "max_ahead_s": seconds(),
         "history": _Int(1, 1_000_000),
     }),
     "net": _Section(S.NetSettings, {
@@ -247,7 +248,7 @@ _MODEL = _Section(S.ModelSettings, {
         "topic": _Topic(publish=True),
         "qos": _Int(0, 2),
         "retain": _bool,
-        "every_s": _POS,
+        "every_s": seconds(),
     }),
 }, checks=(_model,))
 
@@ -274,7 +275,7 @@ SCHEMA = _Section(S.Settings, {
     }, checks=(_broker, _broker_files), refused={"password": INLINE_PASSWORD}),
     "state_dir": _Path(is_dir=True),
     "checkpoints": _Section(S.CheckpointSettings, {
-        "every_s": _POS,
+        "every_s": seconds(),
         "keep": _Int(1),
         "fresh_on_mismatch": _bool,
     }),

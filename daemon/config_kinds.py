@@ -246,18 +246,24 @@ class _IntList:
 
 
 # An input's history is bounded by a count of readings (align.history), not by an age, so no
-# setting says how far back a lag can reach. 30 days is a plain sanity limit (common practice,
-# no source): far beyond any lag a soft sensor uses, and it refuses values such as 1e300 that
-# would skip every sample as stale.
-MAX_LAG_S = 30 * 86400
+# setting says how far back a lag can reach; nor does anything bound an age or a period. 30 days
+# is a plain sanity limit for all of them (common practice, no source): far beyond any lag,
+# staleness or save period a soft sensor uses, and it refuses values such as 1e300 (every sample
+# skipped as stale) or a mistyped 3e7 (no checkpoint for a year).
+MAX_SECONDS = 30 * 86400
 
 
 def _lag(v, path, ctx):
     lag = _Float(0)(v, path, ctx)
-    if lag is not BAD and lag > MAX_LAG_S:
-        return ctx.bad(path, f"{show(lag)} is out of range; allowed [0, {MAX_LAG_S}] seconds "
+    if lag is not BAD and lag > MAX_SECONDS:
+        return ctx.bad(path, f"{show(lag)} is out of range; allowed [0, {MAX_SECONDS}] seconds "
                              f"(30 days)")
     return lag
+
+
+def seconds(zero_allowed: bool = False) -> _Float:
+    """A duration in seconds: above 0 (or from 0) and at most MAX_SECONDS."""
+    return _Float(0, MAX_SECONDS, lo_open=not zero_allowed)
 
 
 def _lags(v, path, ctx):

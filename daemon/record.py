@@ -15,7 +15,7 @@ from typing import Callable, Optional, Protocol
 
 import paho.mqtt.client as mqtt
 
-from .broker_access import read_password_file
+from .broker_access import read_password_file, tls_context
 from .capture import CaptureWriter
 from .errors import EdgepropError
 from .settings import BrokerSettings, Settings
@@ -46,7 +46,9 @@ def _make_client(settings: Settings) -> mqtt.Client:
     if b.username is not None:     # read as run reads it, so record sends what run would send
         client.username_pw_set(b.username, read_password_file(b.password_file) if b.password_file else None)
     if b.tls is not None:
-        client.tls_set(ca_certs=b.tls.ca_file, certfile=b.tls.cert_file, keyfile=b.tls.key_file)
+        # the daemon's own context (TLS 1.2 or newer, host name checked): record connects
+        # under the same rules as run, so a capture proves the daemon's connection would work
+        client.tls_set_context(tls_context(b.tls))
     client.reconnect_delay_set(max(1, round(b.reconnect_min_s)), max(1, round(b.reconnect_max_s)))
     return client
 

@@ -205,7 +205,7 @@ ERRORS = [
     ({"interval": {"coverage": 1}},
      "models[0].interval.coverage: 1.0 is out of range; allowed (0, 1)"),
     ({"publish": {"qos": 3}}, "models[0].publish.qos: 3 is out of range; allowed [0, 2]"),
-    ({"publish": {"every_s": 0}}, "models[0].publish.every_s: 0.0 is out of range; allowed > 0"),
+    ({"publish": {"every_s": 0}}, "models[0].publish.every_s: 0.0 is out of range; allowed (0, 2592000]"),
     ({"publish": {"topic": "plant/#"}},
      "models[0].publish.topic: 'plant/#' contains the wildcard '#'; publish topics may not "
      "contain wildcards"),
@@ -257,7 +257,7 @@ ERRORS = [
      "models[0].colour: unknown key; allowed keys: name, task, target, inputs, align, net, "
      "training, drift, interval, guard, publish"),
     ({"align": {"max_age_s": 0}},
-     "models[0].align.max_age_s: 0.0 is out of range; allowed > 0"),
+     "models[0].align.max_age_s: 0.0 is out of range; allowed (0, 2592000]"),
     ({"guard": "on"}, "models[0].guard: 'on' is a string; expected a mapping of keys"),
 ]
 
@@ -287,7 +287,7 @@ TOP_ERRORS = [
     ({"broker": {"reconnect_min_s": 10, "reconnect_max_s": 5}},
      "broker.reconnect_max_s: 5.0 is below reconnect_min_s 10.0; allowed >= reconnect_min_s"),
     ({"checkpoints": {"keep": 0}}, "checkpoints.keep: 0 is out of range; allowed >= 1"),
-    ({"checkpoints": {"every_s": 0}}, "checkpoints.every_s: 0.0 is out of range; allowed > 0"),
+    ({"checkpoints": {"every_s": 0}}, "checkpoints.every_s: 0.0 is out of range; allowed (0, 2592000]"),
     ({"metrics": {"listen": "9740"}},
      "metrics.listen: '9740' is not HOST:PORT with port 0..65535; e.g. '127.0.0.1:9740' or "
      "'[::1]:9740' (port 0 picks a free port and logs it; null disables the endpoint)"),
@@ -465,3 +465,18 @@ def test_diff_settings_names_changed_paths():
         "models[seal_leak]: added",
     ]
     assert diff_settings(parse_config(raw), old)[-1] == "models[seal_leak]: removed"
+
+
+def test_ages_and_periods_over_30_days_are_refused_all_at_once():
+    raw = with_model(align={"max_age_s": 1e300, "late_tolerance_s": 4e6, "max_ahead_s": 0},
+                     publish={"every_s": 1e9})
+    raw["checkpoints"] = {"every_s": 3e7}              # 3e2 mistyped: no save for a year
+    assert sorted(problems_of(raw)) == [
+        "checkpoints.every_s: 30000000.0 is out of range; allowed (0, 2592000]",
+        "models[0].align.late_tolerance_s: 4000000.0 is out of range; allowed [0, 2592000]",
+        "models[0].align.max_age_s: 1e+300 is out of range; allowed (0, 2592000]",
+        "models[0].align.max_ahead_s: 0.0 is out of range; allowed (0, 2592000]",
+        "models[0].publish.every_s: 1000000000.0 is out of range; allowed (0, 2592000]",
+    ]
+    ok = with_model(align={"max_age_s": 2592000, "late_tolerance_s": 0}, publish={"every_s": 0.5})
+    parse_config(ok)
