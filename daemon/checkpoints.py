@@ -161,6 +161,10 @@ class CheckpointStore:
     def promote(self, cid: str) -> str:
         """Save a copy of ``cid`` as the newest checkpoint, so the next start restores it."""
         arrays, meta = self.load(cid)
+        refusal = self.fits(meta) if self.fits is not None else None
+        if refusal:
+            raise CheckpointError(f"checkpoint {cid} was saved for other settings ({refusal}); "
+                                  f"the configured model could not start from it")
         meta = {k: v for k, v in meta.items() if k not in RESERVED_META}
         meta["restored_from"] = cid
         return self.save(arrays, meta)
@@ -256,7 +260,10 @@ class CheckpointStore:
             raise StateFileError("io", str(exc)) from None
         if header.get("id", cid) != cid:
             raise StateFileError("id", f"header id {header.get('id')!r}")
-        return arrays, {k: v for k, v in header.items() if k not in _FORMAT_KEYS}
+        meta = {k: v for k, v in header.items() if k not in _FORMAT_KEYS}
+        if "optimizer" not in meta:          # written before headers named it
+            meta["optimizer"] = _optimizer_of(arrays)
+        return arrays, meta
 
     def _problem(self, exc: StateFileError) -> str:
         text = REASON_TEXT.get(exc.reason, exc.reason)
@@ -384,6 +391,15 @@ class CheckpointStore:
     def _write_pins(self, pins: set[str]) -> None:
         data = json.dumps(sorted(pins), indent=1).encode()
         self._write_atomic(os.path.join(self.directory, PINS_FILE), data)
+
+
+def _optimizer_of(arrays: Mapping[str, np.ndarray]) -> Optional[str]:
+    """The optimiser whose state a checkpoint holds, told by its array names."""
+    if "opt/m" in arrays:
+        return "adam"
+    if "opt/velocity" in arrays:
+        return "sgd"
+    return None
 
 
 def _float(v: Any) -> Optional[float]:

@@ -67,7 +67,13 @@ def _store(settings: Settings, model: str, write: bool = False) -> CheckpointSto
         return None
     if write:
         _check_owner(directory)
-    return CheckpointStore(directory, settings.checkpoints.keep, tidy=write)
+    store = CheckpointStore(directory, settings.checkpoints.keep, tidy=write)
+    if write:
+        # as the daemon prunes: only what the configured model can load counts towards keep
+        from .runtime import ModelRuntime
+        (m,) = [m for m in settings.models if m.name == model]
+        store.fits = ModelRuntime(m, "", None).refusal
+    return store
 
 
 def _check_owner(directory: str) -> None:

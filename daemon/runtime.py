@@ -175,7 +175,7 @@ class ModelRuntime:
         self.checkpoint_id = self.good_id = found[0]
         return found[0]
 
-    def refusal(self, meta: dict, arrays: dict | None = None) -> str | None:
+    def refusal(self, meta: dict) -> str | None:
         """Why a checkpoint was saved for another model shape (None: it fits).
 
         The network's shape and the optimiser (its state has other arrays) come from the
@@ -185,7 +185,7 @@ class ModelRuntime:
             self.learner.check_header(meta)
         except StateFileError as exc:
             return str(exc)
-        saved = meta.get("optimizer") or _optimizer_of(arrays or {})
+        saved = meta.get("optimizer")        # the store fills it in for older files
         configured = self.settings.training.optimizer
         if saved is not None and saved != configured:
             return f"saved with training.optimizer {saved!r}, configured {configured!r}"
@@ -194,7 +194,7 @@ class ModelRuntime:
     def _load_if_fits(self, meta: dict, arrays: dict[str, np.ndarray]) -> str | None:
         """Load the checkpoint unless it belongs to other settings; raises StateFileError
         when its contents are unusable (non-finite numbers, arrays that do not fit together)."""
-        refusal = self.refusal(meta, arrays)
+        refusal = self.refusal(meta)
         if refusal is None:
             self.load_arrays(arrays)
         return refusal
@@ -273,15 +273,6 @@ def store_for(state_dir: str, model: ModelSettings, keep: int, log: Callable[...
 def _non_finite(arrays: dict[str, np.ndarray]) -> list[str]:
     """Names of the float arrays holding NaN or infinity, sorted."""
     return sorted(k for k, a in arrays.items() if a.dtype.kind == "f" and not np.isfinite(a).all())
-
-
-def _optimizer_of(arrays: dict) -> str | None:
-    """The optimiser a checkpoint written before its header named one was saved with."""
-    if "opt/m" in arrays:
-        return "adam"
-    if "opt/velocity" in arrays:
-        return "sgd"
-    return None
 
 
 __all__ = ["ModelRuntime", "store_for", "split_parts"]

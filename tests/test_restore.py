@@ -145,3 +145,40 @@ def test_a_failed_save_keeps_its_reason_for_the_operator_and_loses_nothing(tmp_p
     assert "No such file" in p.rt.last_save_error and "gone/m1" in p.rt.last_save_error
     p.rt.store.directory = directory
     assert [c.id for c in p.rt.store.list()] == [good]
+
+
+def test_files_from_before_headers_named_the_optimiser_are_told_by_their_arrays(tmp_path) -> None:
+    sgd = Plant(tmp_path, store=True, warmup=50, training={"optimizer": "sgd"})
+    sgd.feed(100)
+    meta = {k: v for k, v in sgd.rt.meta("test").items() if k != "optimizer"}
+    old = sgd.rt.store.save(sgd.rt.state_arrays(), meta)       # as an older build wrote it
+    adam = Plant(tmp_path, store=True, warmup=50, training={"optimizer": "adam"})
+    with pytest.raises(CheckpointError, match="saved with training.optimizer 'sgd'"):
+        adam.engine.restore_all()
+    # and an operator's copy of it as the newest (offline rollback) is refused the same way
+    with pytest.raises(CheckpointError, match=f"checkpoint {old} was saved for other settings"):
+        adam.rt.store.promote(old)
+    assert [c.id for c in adam.rt.store.list()] == [old]
+
+
+def test_offline_rollback_to_another_optimisers_checkpoint_is_refused_by_the_cli(tmp_path) -> None:
+    import os
+    import subprocess
+    import sys
+
+    import yaml
+    from daemon_proc import ROOT, model_config
+    sgd, cid = trained(tmp_path, training={"optimizer": "sgd"})
+    config = tmp_path / "edgeprop.yaml"
+    config.write_text(yaml.safe_dump({
+        "node": "station-7", "state_dir": str(tmp_path / "state"), "metrics": {"listen": None},
+        "control": {"socket": str(tmp_path / "ctl.sock")},
+        "models": [model_config(training={"optimizer": "adam"})]}))
+    res = subprocess.run([sys.executable, "-m", "daemon.cli", "rollback", "--model", "m1", "--to", cid,
+                          "-c", str(config)], capture_output=True, text=True, timeout=60,
+                         env={**os.environ, "PYTHONPATH": ROOT})
+    assert res.returncode == 1, (res.stdout, res.stderr)
+    assert f"checkpoint {cid} was saved for other settings (saved with training.optimizer 'sgd', " \
+           f"configured 'adam')" in res.stderr
+    assert "Traceback" not in res.stderr
+    assert [c.id for c in sgd.rt.store.list()] == [cid]
