@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import dataclasses
 import os
+import stat
 
 import yaml
 
@@ -96,6 +97,17 @@ def _state_dir_in_place(values, raw, path, ctx):
         ensure_private_dir(state_dir)
     except CheckpointError as exc:
         ctx.bad("state_dir", str(exc))
+
+
+def _control_socket_in_place(values, raw, path, ctx):
+    """A file or directory where the control socket goes: run would refuse to replace it."""
+    state_dir, control = values["state_dir"], values["control"]
+    if not ctx.preflight or state_dir is BAD or control is BAD:
+        return
+    sock = control.socket or os.path.join(state_dir, "control.sock")
+    if os.path.lexists(sock) and not stat.S_ISSOCK(os.lstat(sock).st_mode):
+        ctx.bad("control.socket", f"{show(sock)} exists and is not a socket; run would refuse to "
+                                  f"replace it: remove it, or set another control.socket")
 
 
 def _training(values, raw, path, ctx):
@@ -293,7 +305,7 @@ SCHEMA = _Section(S.Settings, {
     "control": _Section(S.ControlSettings, {"socket": _Path()}),
     "logging": _Section(S.LoggingSettings, {"level": _Choice("debug", "info", "warning", "error")}),
     "models": _ListOf(_MODEL, "model"),
-}, checks=(_root, _state_dir_in_place))
+}, checks=(_root, _state_dir_in_place, _control_socket_in_place))
 
 
 # ---- public API ------------------------------------------------------------------------------

@@ -529,3 +529,17 @@ def test_learning_rates_must_be_finite(tmp_path, rates):
                    "--learning-rates", rates)
     assert res.returncode == 2, res.stderr
     assert f"--learning-rates: {rates!r}: every value must be a finite number > 0" in res.stderr
+
+
+def test_check_reports_a_file_where_the_control_socket_goes(tmp_path):
+    state = tmp_path / "state"
+    state.mkdir(mode=0o700)
+    (state / "control.sock").write_text("not a socket\n")
+    path = write(tmp_path, f"state_dir: {state}\n" + MODEL)
+    res = edgeprop("check", "-c", path)
+    assert res.returncode == 2, (res.stdout, res.stderr)
+    assert problem_lines(res.stderr) == [
+        f"control.socket: {str(state / 'control.sock')!r} exists and is not a socket; run would "
+        f"refuse to replace it: remove it, or set another control.socket"]
+    (state / "control.sock").unlink()
+    assert edgeprop("check", "-c", path).returncode == 0
