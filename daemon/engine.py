@@ -325,9 +325,9 @@ class Engine:
             mismatches = getattr(rt.store, "mismatches", []) if rt.store else []
             if cid is None and mismatches and not self.settings.checkpoints.fresh_on_mismatch:
                 raise CheckpointError(
-                    f"model {rt.name!r}: saved checkpoints do not fit the configured network "
+                    f"model {rt.name!r}: saved checkpoints do not fit the configured model "
                     f"({mismatches[0][1]}); set checkpoints.fresh_on_mismatch: true to start fresh, "
-                    f"or restore the old network settings")
+                    f"or restore the old settings")
             self.log("info", "model_restored" if cid else "model_fresh", model=rt.name, id=cid,
                      samples=rt.learner.samples, architecture=rt.learner.net.architecture)
             if self.metrics is not None:

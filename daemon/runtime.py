@@ -131,7 +131,12 @@ class ModelRuntime:
         return {"model": self.name, "samples": self.learner.samples,
                 "loss": self.guard.long if self.guard.seen else None,
                 "learning_rate": self.learner.learning_rate, "reason": reason,
-                "optimizer": self.settings.training.optimizer, **self.learner.header()}
+                "optimizer": self.settings.training.optimizer, "inputs": self._input_columns(),
+                **self.learner.header()}
+
+    def _input_columns(self) -> list[list]:
+        """Each input's name and lags, in column order: what the saved weights are wired to."""
+        return [[i.name, [float(lag) for lag in i.lags_s]] for i in self.settings.inputs]
 
     def checkpoint(self, reason: str) -> str | None:
         """Save now; returns the new id (None without a store). Raises CheckpointError."""
@@ -189,6 +194,11 @@ class ModelRuntime:
         configured = self.settings.training.optimizer
         if saved is not None and saved != configured:
             return f"saved with training.optimizer {saved!r}, configured {configured!r}"
+        # Same shape, other wiring: inputs renamed, reordered or lagged otherwise would feed
+        # each weight and scaler another column. Files from before headers named them pass.
+        saved_inputs, inputs = meta.get("inputs"), self._input_columns()
+        if saved_inputs is not None and saved_inputs != inputs:
+            return f"saved with inputs {_inputs_text(saved_inputs)}, configured {_inputs_text(inputs)}"
         return None
 
     def _load_if_fits(self, meta: dict, arrays: dict[str, np.ndarray]) -> str | None:
@@ -268,6 +278,15 @@ def store_for(state_dir: str, model: ModelSettings, keep: int, log: Callable[...
     """The checkpoint store of one model: ``<state_dir>/<model>/``."""
     import os
     return CheckpointStore(os.path.join(state_dir, model.name), keep, clock=clock, log=log)
+
+
+def _inputs_text(columns: object) -> str:
+    """Inputs as name(lags) for a message, e.g. [speed(0, 30), current(0)]."""
+    try:
+        return "[" + ", ".join(f"{name}({', '.join(f'{lag:g}' for lag in lags)})"
+                               for name, lags in columns) + "]"
+    except (TypeError, ValueError):
+        return repr(columns)          # a hand-edited header: show it as it is
 
 
 def _non_finite(arrays: dict[str, np.ndarray]) -> list[str]:

@@ -264,7 +264,7 @@ def test_architecture_mismatch_refuses_to_start_unless_the_config_allows_fresh(b
     d.kill()
     text = d.log()
     assert "event=start_failed" in text
-    assert "do not fit the configured network" in text and "fresh_on_mismatch: true" in text, text
+    assert "do not fit the configured model" in text and "fresh_on_mismatch: true" in text, text
     assert checkpoint_ids(str(tmp_path / "state")) == saved          # nothing lost
 
     cfg = write_config(tmp_path, broker, models=[model_config(hidden=(8, 4))],

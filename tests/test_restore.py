@@ -182,3 +182,22 @@ def test_offline_rollback_to_another_optimisers_checkpoint_is_refused_by_the_cli
            f"configured 'adam')" in res.stderr
     assert "Traceback" not in res.stderr
     assert [c.id for c in sgd.rt.store.list()] == [cid]
+
+
+def test_inputs_reordered_or_relagged_are_a_mismatch_not_a_silent_rewiring(tmp_path) -> None:
+    """Two inputs swapped in the config keep the network's shape, so the shape check alone
+    would load every weight and scaler onto the other column: predictions wrong until
+    relearned, with nothing said. The saved inputs are compared too."""
+    from daemon_proc import model_config
+    trained(tmp_path)
+    speed, current = model_config()["inputs"]
+    swapped = Plant(tmp_path, store=True, warmup=50, inputs=[current, speed])
+    with pytest.raises(CheckpointError, match=r"saved with inputs \[speed\(0\), current\(0\)\], "
+                                              r"configured \[current\(0\), speed\(0\)\]"):
+        swapped.engine.restore_all()
+    lagged = Plant(tmp_path, store=True, warmup=50, inputs=[speed, {**current, "lags_s": [30]}])
+    with pytest.raises(CheckpointError, match=r"configured \[speed\(0\), current\(30\)\]"):
+        lagged.engine.restore_all()
+    same = Plant(tmp_path, store=True, warmup=50)
+    same.engine.restore_all()
+    assert same.rt.learner.samples == 200
