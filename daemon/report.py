@@ -174,10 +174,17 @@ def _draw_model(ax_val, ax_res, s: ModelSeries, t0: float, events: list[dict]) -
     ax_val.plot(h, s.predicted, color="tab:blue", linewidth=0.8, label="predicted")
     ax_val.set_ylabel(f"{s.name}\nP(1)" if s.binary else s.name)
     ax_val.legend(loc="upper left", fontsize=7, ncol=3)
-    ax_res.fill_between(h, s.low - s.predicted, s.high - s.predicted, color="tab:blue", alpha=0.2, linewidth=0)
-    ax_res.plot(h, s.measured - s.predicted, ".", color="tab:orange", markersize=1.5)
-    ax_res.axhline(0.0, color="grey", linewidth=0.6)
-    ax_res.set_ylabel("residual")
+    if s.binary:
+        # measured minus a probability means little; each message's log-loss shows the
+        # confident misses (tall points) that the accuracy figure hides
+        ax_res.plot(h, log_loss_terms(s.predicted, s.measured), ".", color="tab:orange", markersize=1.5)
+        ax_res.set_ylabel("log-loss")
+    else:
+        ax_res.fill_between(h, s.low - s.predicted, s.high - s.predicted, color="tab:blue", alpha=0.2,
+                            linewidth=0)
+        ax_res.plot(h, s.measured - s.predicted, ".", color="tab:orange", markersize=1.5)
+        ax_res.axhline(0.0, color="grey", linewidth=0.6)
+        ax_res.set_ylabel("residual")
     for ax in (ax_val, ax_res):
         for i in drift_starts(s.drift):
             ax.axvline(h[i], color="tab:red", linestyle="--", linewidth=0.8)

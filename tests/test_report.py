@@ -105,3 +105,18 @@ def test_binary_model_in_report_txt_has_no_rmse_or_interval(tmp_path):
     assert re.search(r"accuracy all\s+0\.8333\b", block) and re.search(r"log-loss all\s+0\.5527\b", block)
     assert "RMSE" not in block and "interval" not in block and "nan" not in block
     assert re.search(r"RMSE all\s+1\.225\b", text.split("model bearing_temp")[1])
+
+
+def test_binary_model_plot_shows_each_messages_log_loss_not_a_residual():
+    from matplotlib.figure import Figure
+
+    from daemon.report import _draw_model
+    s = split_by_model(binary_example(), binary={"seal_leak"})[0]
+    fig = Figure()
+    ax_val, ax_res = fig.subplots(2)
+    _draw_model(ax_val, ax_res, s, T0, [])
+    assert ax_res.get_ylabel() == "log-loss"
+    (points,) = ax_res.get_lines()
+    # the confident miss (0.8 for a 0) stands out: -ln(0.2) by hand
+    assert points.get_ydata()[2] == pytest.approx(-math.log(0.2), rel=1e-12)
+    assert max(points.get_ydata()) == points.get_ydata()[2]
