@@ -177,8 +177,17 @@ class ModelRuntime:
         found = self.store.load_newest(self._load_if_fits)
         if found is None:
             return None
+        self._note_other_name(found[0], found[2])
         self.checkpoint_id = self.good_id = found[0]
         return found[0]
+
+    def _note_other_name(self, cid: str, meta: dict) -> None:
+        """Say so when the checkpoint was saved under another model name: a directory copied
+        or renamed by hand loads (the settings fit), but it may hold another target's model."""
+        saved = meta.get("model")
+        if saved is not None and saved != self.name and self.store is not None:
+            self.store.log("warning", "checkpoint_of_other_model", model=self.name, id=cid,
+                           saved_by=saved, action="loaded: the network, optimiser and inputs fit")
 
     def refusal(self, meta: dict) -> str | None:
         """Why a checkpoint was saved for another model shape (None: it fits).
@@ -221,6 +230,7 @@ class ModelRuntime:
         if refusal is not None:
             raise CheckpointError(f"checkpoint {cid} cannot be restored into model {self.name!r}: "
                                   f"{refusal}")
+        self._note_other_name(cid, meta)
         self.checkpoint_id = self.good_id = cid
         self.saved_samples = None          # not the newest on disk: the next save keeps it
 

@@ -201,3 +201,16 @@ def test_inputs_reordered_or_relagged_are_a_mismatch_not_a_silent_rewiring(tmp_p
     same = Plant(tmp_path, store=True, warmup=50)
     same.engine.restore_all()
     assert same.rt.learner.samples == 200
+
+
+def test_a_checkpoint_saved_under_another_model_name_loads_with_a_warning(tmp_path) -> None:
+    p, _ = trained(tmp_path)
+    meta = {**p.rt.meta("test"), "model": "seal_leak"}      # a directory copied by hand
+    other = p.rt.store.save(p.rt.state_arrays(), meta)
+    again = Plant(tmp_path, store=True, warmup=50)
+    seen = []
+    again.rt.store.log = lambda level, event, **fields: seen.append((level, event, fields))
+    again.engine.restore_all()
+    assert again.rt.checkpoint_id == other
+    assert [(lv, ev, f["saved_by"]) for lv, ev, f in seen if ev == "checkpoint_of_other_model"] == \
+        [("warning", "checkpoint_of_other_model", "seal_leak")]
