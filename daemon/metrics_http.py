@@ -13,7 +13,9 @@ import re
 import socket
 import ssl
 import stat
+import sys
 import threading
+import time
 from dataclasses import dataclass
 from typing import Any, Callable, Iterable, Optional
 from wsgiref.simple_server import WSGIRequestHandler, WSGIServer, make_server
@@ -67,7 +69,39 @@ class MetricsServer:
     shutdown = close
 
 
-def serve(settings: MetricsSettings, registry: CollectorRegistry) -> Optional[MetricsServer]:
+class FailedRequests:
+    """One log line per failed connection (plain HTTP to the TLS port, a dropped or silent
+    client), at most one every ``every_s`` with a count of the rest, instead of the standard
+    library's 20-line traceback each: anyone who can reach the port could fill the journal."""
+
+    def __init__(self, log: Callable[..., None] | None, every_s: float = 60.0) -> None:
+        self.log, self.every_s = log, every_s
+        self.count = 0                   # all failed requests since start
+        self._quiet = 0                  # not logged since the last line
+        self._last = -float("inf")
+        self._lock = threading.Lock()
+
+    def __call__(self, request: object, client_address: object) -> None:
+        """``socketserver``'s ``handle_error``, called inside the handler's ``except``."""
+        exc = sys.exc_info()[1]
+        with self._lock:
+            self.count += 1
+            now = time.monotonic()
+            if now - self._last < self.every_s:
+                self._quiet += 1
+                return
+            self._last, quiet, self._quiet = now, self._quiet, 0
+        if self.log is not None:
+            peer = client_address[0] if isinstance(client_address, tuple) else client_address
+            self.log("warning", "metrics_request_failed", client=peer,
+                     error=f"{type(exc).__name__}: {exc}" if exc else "unknown",
+                     not_logged_before=quiet, total=self.count,
+                     hint="a scraper using http:// against metrics.tls, or a client that "
+                          "dropped or stalled; at most one such line a minute")
+
+
+def serve(settings: MetricsSettings, registry: CollectorRegistry,
+          log: Callable[..., None] | None = None) -> Optional[MetricsServer]:
     """Start the scrape endpoint in a daemon thread; None when ``listen`` is null."""
     if settings.listen is None:
         return None
@@ -86,6 +120,7 @@ def serve(settings: MetricsSettings, registry: CollectorRegistry) -> Optional[Me
             password = read_password(settings.basic_auth.password_file)
             app = _basic_auth(make_wsgi_app(registry), settings.basic_auth.username, password)
             httpd, thread = _start_wsgi(host, port, app, tls)
+        httpd.handle_error = FailedRequests(log)     # socketserver looks it up on the instance
     except OSError as e:
         raise EdgepropError(f"metrics.listen {settings.listen!r}: cannot listen ({e}); "
                             "choose a free port or set metrics.listen: null") from e

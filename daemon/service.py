@@ -98,7 +98,7 @@ class Service:
                                 log_level=self.settings.logging.level)
         self.link.start()          # a refused password file or certificate ends it here
         try:
-            self.http = serve(self.settings.metrics, self.metrics.registry)
+            self.http = serve(self.settings.metrics, self.metrics.registry, log=self.log)
         except BaseException:
             self.link.stop()       # e.g. the metrics port is taken: leave the broker cleanly
             raise

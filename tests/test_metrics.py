@@ -8,6 +8,7 @@ import socket
 import ssl
 import statistics
 import subprocess
+import time
 import urllib.error
 import urllib.request
 
@@ -463,3 +464,31 @@ def test_silent_client_does_not_block_tls_scrapes(pump: Metrics, self_signed,
     finally:
         silent.close()
         server.close()
+
+
+@pytest.mark.parametrize("with_auth", [False, True])
+def test_failed_requests_are_one_rate_limited_line_not_a_traceback_each(
+        pump: Metrics, self_signed, password_file: str, with_auth: bool, capfd) -> None:
+    """Plain HTTP to the TLS endpoint (a scrape job with the wrong scheme, or anyone on the
+    network) made the standard library print a 20-line traceback per request to stderr."""
+    cert, key = self_signed
+    auth = MetricsAuth("prometheus", password_file) if with_auth else None
+    lines: list[tuple[str, str, dict]] = []
+    server = serve(MetricsSettings("127.0.0.1:0", MetricsTls(cert, key), auth), pump.registry,
+                   log=lambda level, event, **fields: lines.append((level, event, fields)))
+    try:
+        for _ in range(20):
+            with pytest.raises((urllib.error.URLError, ConnectionError, OSError)):
+                get(server.url.replace("https://", "http://"))
+        trust = ssl.create_default_context(cafile=cert)
+        assert get(server.url, ("prometheus", "s3cret-pump"), context=trust)[0] == 200
+        handler = server.httpd.handle_error
+        wait_for = time.monotonic() + 5
+        while handler.count < 20 and time.monotonic() < wait_for:   # handler threads finish
+            time.sleep(0.02)
+    finally:
+        server.close()
+    assert handler.count == 20
+    assert [(level, event) for level, event, _ in lines] == [("warning", "metrics_request_failed")]
+    assert "SSL" in lines[0][2]["error"] and lines[0][2]["client"] == "127.0.0.1"
+    assert "Traceback" not in capfd.readouterr().err
