@@ -13,6 +13,7 @@ the cap on paho's version; tests/test_mqtt_link.py runs it against a real broker
 from __future__ import annotations
 
 import socket
+import ssl
 import threading
 from contextlib import contextmanager
 from typing import Callable, Iterator
@@ -68,6 +69,7 @@ class LinkClient(mqtt.Client):
     it also remembers why the last connection attempt failed (paho drops the reason)."""
 
     last_connect_error: str = ""
+    last_read_error: str = ""   # why the last read failed (cleared by the link on connect)
     _rbuf: bytes = b""          # bytes read from the socket, not yet handed to paho
     _rpos: int = 0
     _refills_left: int = 1
@@ -245,7 +247,15 @@ class LinkClient(mqtt.Client):
         if self._refills_left <= 0:
             raise BlockingIOError()
         self._refills_left -= 1
-        return super()._sock_recv(READ_CHUNK)
+        try:
+            return super()._sock_recv(READ_CHUNK)
+        except (BlockingIOError, ssl.SSLWantReadError, ssl.SSLWantWriteError):
+            raise
+        except OSError as exc:
+            # paho turns this into "Unspecified error"; keep the cause (a broker's TLS alert
+            # about our certificate arrives here, after the handshake) for the log line
+            self.last_read_error = f"{type(exc).__name__}: {exc}"
+            raise
 
     def _sock_close(self) -> None:
         with self._io:

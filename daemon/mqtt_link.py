@@ -50,6 +50,38 @@ def _stderr_log(level: str, event: str, **fields: object) -> None:
     print(" ".join(parts), file=sys.stderr, flush=True)
 
 
+# What a connection failure's text says about the config, and the key to look at. Matched on
+# the words paho, OpenSSL and the broker use (OpenSSL's alert and reason names; MQTT reason
+# strings as paho prints them), first match wins.
+_HINTS = (
+    (("ALERT_UNKNOWN_CA", "ALERT_BAD_CERTIFICATE", "CERTIFICATE_EXPIRED", "ALERT_CERTIFICATE_REVOKED",
+      "ALERT_CERTIFICATE_UNKNOWN", "ALERT_CERTIFICATE_REQUIRED"),
+     "the broker refused our client certificate: check broker.tls.cert_file (expired, not yet "
+     "valid, or from a CA the broker does not trust)"),
+    (("CERTIFICATE_VERIFY_FAILED",),
+     "we refused the broker's certificate: check broker.tls.ca_file, and that broker.host is a "
+     "name the certificate was issued for"),
+    (("WRONG_VERSION_NUMBER", "UNEXPECTED_EOF", "record layer failure", "Connection reset"),
+     "TLS and plain TCP mixed up? broker.port must be a TLS listener when broker.tls is set, "
+     "and a plain one when it is not"),
+    (("Not authorized", "Bad user name or password", "not authorised"),
+     "check broker.username and the password in broker.password_file"),
+    (("Connection refused",), "nothing listens at broker.host:broker.port (broker down, or the "
+                              "wrong port)"),
+)
+
+
+def connect_hint(reason: str, settings: BrokerSettings) -> str | None:
+    """A pointer to the config key behind a failed or lost connection; None when unknown."""
+    for needles, hint in _HINTS:
+        if any(n in reason for n in needles):
+            return hint
+    if settings.tls is None and "no answer to CONNECT (Unspecified error)" in reason:
+        return ("the broker closed the connection without answering: if broker.port is a TLS "
+                "listener, set broker.tls")
+    return None
+
+
 def _settled(info: mqtt.MQTTMessageInfo) -> bool:
     """True once a publish left (QoS 0), was acknowledged (QoS 1) or was given up by paho."""
     try:
@@ -234,7 +266,8 @@ class BrokerLink:
         cap = min(hi, lo * 2.0 ** min(self._failures + 1, 40))
         delay = float(self._rng.uniform(lo, cap)) if cap > lo else lo
         self._failures += 1
-        self._log("warning", event, reason=reason, retry_in_s=round(delay, 2))
+        self._log("warning", event, reason=reason, retry_in_s=round(delay, 2),
+                  hint=connect_hint(reason, self.settings))
         self._wake.wait(delay)          # stop() sets it so shutdown never waits out a backoff
 
     # ---- paho callbacks (network thread: must not raise) ---------------------------------
@@ -252,6 +285,7 @@ class BrokerLink:
             self._refused = str(reason)
             self.connect_failures += 1
             return
+        client.last_read_error = ""
         if self._ever_connected:
             self.reconnects += 1
         self._ever_connected = True
@@ -297,7 +331,8 @@ class BrokerLink:
             return
         if not was_up:                  # socket opened but no CONNACK came back
             self.connect_failures += 1
-            text = f"no answer to CONNECT ({reason})"
+            cause = getattr(client, "last_read_error", "") or str(reason)
+            text = f"no answer to CONNECT ({cause})"
             tls = self.settings.tls
             if tls is not None and not tls.cert_file:
                 # what mosquitto with require_certificate does to a client without one: the

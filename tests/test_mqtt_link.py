@@ -554,6 +554,8 @@ def test_password_login_and_wrong_password_backs_off(broker_factory, tmp_path):
         wrong.stop()
     failed = log.events("broker_connect_failed")
     assert failed and all(f["reason"] == "Not authorized" for f in failed)
+    assert all(f["hint"] == "check broker.username and the password in broker.password_file"
+               for f in failed)
     assert all(f["retry_in_s"] >= FAST_RETRY["reconnect_min_s"] - 0.01 for f in failed)
     assert not any("guess" in repr(line) for line in log.lines)        # the password is never logged
 

@@ -83,14 +83,17 @@ def test_tls_to_a_real_mosquitto_listener(broker_factory, pki, tmp_path, client_
 
 def test_tls_refusals_are_one_clear_line_per_attempt(broker_factory, pki, other_pki, tmp_path):
     broker = broker_factory(tls=pki, require_certificate=True)
-    (tmp_path / "a").mkdir()
-    (tmp_path / "b").mkdir()
+    for sub in ("a", "b", "c"):
+        (tmp_path / sub).mkdir()
     wrong_ca = write_config(tmp_path / "a", broker)
     set_config_keys(wrong_ca, "broker", tls={"ca_file": other_pki.ca_file,
                                              "cert_file": pki.client_cert, "key_file": pki.client_key})
     no_cert = write_config(tmp_path / "b", broker)
     set_config_keys(no_cert, "broker", tls={"ca_file": pki.ca_file})
-    daemons = [Daemon(wrong_ca), Daemon(no_cert)]
+    foreign_cert = write_config(tmp_path / "c", broker)     # a client certificate of another CA
+    set_config_keys(foreign_cert, "broker", tls={"ca_file": pki.ca_file, "cert_file": other_pki.client_cert,
+                                                 "key_file": other_pki.client_key})
+    daemons = [Daemon(wrong_ca), Daemon(no_cert), Daemon(foreign_cert)]
     try:
         time.sleep(4.0)
         for d in daemons:
@@ -98,7 +101,7 @@ def test_tls_refusals_are_one_clear_line_per_attempt(broker_factory, pki, other_
         logs = [d.log() for d in daemons]
     finally:
         codes = [d.stop() for d in daemons]
-    assert codes == [0, 0], logs
+    assert codes == [0, 0, 0], logs
     for log in logs:
         assert "event=broker_connected" not in log and "Traceback" not in log
         lines = connect_failures(log)
@@ -106,11 +109,15 @@ def test_tls_refusals_are_one_clear_line_per_attempt(broker_factory, pki, other_
         assert 2 <= len(lines) <= 4.0 / 0.2 + 1, lines
         assert all(re.search(r"retry_in_s=\d", l) for l in lines)
     # the operator is told which way it failed: our CA does not vouch for this broker ...
-    assert all("certificate verify failed" in l for l in connect_failures(logs[0])), logs[0]
+    assert all("certificate verify failed" in l and "check broker.tls.ca_file" in l
+               for l in connect_failures(logs[0])), logs[0]
     # ... or the broker wants a client certificate we did not present (mosquitto just closes
     # the connection after the handshake, so the line says what that usually means)
     assert all("client certificate" in l and "broker.tls.cert_file" in l
                for l in connect_failures(logs[1])), logs[1]
+    # ... or it refused the one we presented: its TLS alert is kept, not "Unspecified error"
+    assert all("ALERT" in l and "the broker refused our client certificate" in l
+               for l in connect_failures(logs[2])), logs[2]
 
 
 # ---- broker login -------------------------------------------------------------------------------
