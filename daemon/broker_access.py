@@ -37,6 +37,11 @@ def read_password_file(path: str) -> str:
         if text.endswith(ending):
             text = text[: -len(ending)]
             break
+    if "\n" in text or "\r" in text:
+        # a blank line after the password, or two lines: never meant (no broker password
+        # holds a line break), and the broker would answer only "not authorized"
+        raise ConfigError([f"broker.password_file: {path!r} holds more than one line; write the "
+                           f"broker password alone on its first line"])
     if not text:      # never meant: the broker would refuse it with a bare "not authorized"
         raise ConfigError([f"broker.password_file: {path!r} is empty; write the broker password "
                            f"into it"])

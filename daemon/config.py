@@ -110,6 +110,27 @@ def _control_socket_in_place(values, raw, path, ctx):
                                   f"replace it: remove it, or set another control.socket")
 
 
+def _password_in_clear(values, raw, path, ctx):
+    """Basic auth without TLS beyond loopback would send the scrape password in clear text."""
+    listen, tls, auth = values["listen"], values["tls"], values["basic_auth"]
+    if not isinstance(auth, S.MetricsAuth) or tls is not None or not isinstance(listen, str):
+        return
+    host = listen.rsplit(":", 1)[0].strip("[]")
+    if host == "localhost" or _is_loopback(host):
+        return
+    ctx.bad("metrics.basic_auth", f"set with metrics.tls null on {show(listen)}: the scrape "
+                                  f"password would cross the network in clear text; set "
+                                  f"metrics.tls (cert_file, key_file) or listen on 127.0.0.1")
+
+
+def _is_loopback(host: str) -> bool:
+    import ipaddress
+    try:
+        return ipaddress.ip_address(host).is_loopback
+    except ValueError:
+        return False            # a name: it may resolve to anything
+
+
 def _training(values, raw, path, ctx):
     if not _ok(values, "momentum", "nesterov", "optimizer"):
         return
@@ -301,7 +322,7 @@ SCHEMA = _Section(S.Settings, {
             "username": _Str(),
             "password_file": _Path(must_exist=True, secret=True),
         }, nullable=True, refused={"password": INLINE_PASSWORD}),
-    }, checks=(_metrics_endpoint,)),
+    }, checks=(_password_in_clear, _metrics_endpoint)),
     "control": _Section(S.ControlSettings, {"socket": _Path()}),
     "logging": _Section(S.LoggingSettings, {"level": _Choice("debug", "info", "warning", "error")}),
     "models": _ListOf(_MODEL, "model"),

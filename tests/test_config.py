@@ -480,3 +480,16 @@ def test_ages_and_periods_over_30_days_are_refused_all_at_once():
     ]
     ok = with_model(align={"max_age_s": 2592000, "late_tolerance_s": 0}, publish={"every_s": 0.5})
     parse_config(ok)
+
+
+def test_basic_auth_without_tls_is_refused_beyond_loopback(tmp_path):
+    pw = secret(str(tmp_path / "metrics.pass"))
+    auth = {"username": "prom", "password_file": pw}
+    for listen in ("0.0.0.0:9740", "192.168.10.5:9740", "[::]:9740", "gateway.plant.lan:9740"):
+        raw = dict(MINIMAL, metrics={"listen": listen, "basic_auth": auth})
+        assert problems_of(raw) == [
+            f"metrics.basic_auth: set with metrics.tls null on {listen!r}: the scrape password "
+            f"would cross the network in clear text; set metrics.tls (cert_file, key_file) or "
+            f"listen on 127.0.0.1"], listen
+    for listen in ("127.0.0.1:9740", "[::1]:9740", "localhost:9740"):
+        parse_config(dict(MINIMAL, metrics={"listen": listen, "basic_auth": auth}))

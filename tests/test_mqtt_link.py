@@ -519,9 +519,14 @@ def test_password_file_readable_by_others_is_refused(tmp_path):
     assert "s3cret" not in str(err.value)
 
 
-def test_password_file_strips_one_trailing_newline(tmp_path):
-    assert read_password_file(write_secret(tmp_path, "pa ss\n\n", 0o600)) == "pa ss\n"
+def test_password_file_strips_one_trailing_newline_and_refuses_more_lines(tmp_path):
+    assert read_password_file(write_secret(tmp_path, "pa ss\n", 0o600)) == "pa ss"
     assert read_password_file(write_secret(tmp_path, "crlf\r\n", 0o600)) == "crlf"
+    # a blank line after it: the broker would only say "not authorized"
+    for text in ("pa ss\n\n", "one\ntwo\n"):
+        with pytest.raises(ConfigError, match="holds more than one line; write the broker "
+                                              "password alone on its first line"):
+            read_password_file(write_secret(tmp_path, text, 0o600))
 
 
 def test_bad_settings_are_config_errors(tmp_path):
