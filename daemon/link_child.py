@@ -47,6 +47,7 @@ class LinkState(NamedTuple):
     publish_dropped: int = 0
     queue_depth: int = 0
     queue_dropped: int = 0
+    last_error: str = ""         # why the last connection attempt failed or was lost
 
 
 class Forwarder:
@@ -75,7 +76,8 @@ class Forwarder:
         # a plain tuple on the wire: this module runs as __main__ here, so a LinkState would
         # be pickled under a name the parent cannot look up
         link, queue = self.link, self.queue
-        return (link.connected, link.reconnects, link.publish_dropped, queue.depth, queue.dropped)
+        return (link.connected, link.reconnects, link.publish_dropped, queue.depth, queue.dropped,
+                link.last_error or "")
 
     def on_message(self, topic: str, payload: bytes, arrival_t: float) -> None:
         """paho's thread: hold the reading until the end of the read (or until enough is held)."""

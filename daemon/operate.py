@@ -132,6 +132,9 @@ def _print_table(settings: Settings, only: str | None, in_use: dict | None) -> N
 def _print_status(st: dict) -> None:
     print(f"node {st['node']}  pid {st.get('pid')} (broker link {st.get('link_pid')})  broker {'connected' if st.get('broker_connected') else 'DISCONNECTED'}"
           f"  messages {st['messages']}  queue {st.get('queue_depth')} (dropped {st.get('queue_dropped')})")
+    if not st.get("broker_connected") and st.get("broker_last_error"):
+        print(f"broker: last attempt failed: {st['broker_last_error']} (the journal's "
+              f"broker_connect_failed lines say which key to check)")
     if st.get("rejects"):
         print("rejected: " + ", ".join(f"{k}={v}" for k, v in sorted(st["rejects"].items())))
     for name, m in st["models"].items():

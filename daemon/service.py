@@ -247,6 +247,7 @@ class Service:
         if cmd == "status":
             st = self.engine.status()
             st.update(pid=os.getpid(), link_pid=self.link.pid, broker_connected=self.link.connected,
+                      broker_last_error=self.link.state.last_error or None,
                       queue_depth=self.link.depth, queue_dropped=self.link.dropped,
                       config=os.path.abspath(self.config_path))
             return st

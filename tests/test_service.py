@@ -508,7 +508,13 @@ def test_recovers_by_itself_when_the_broker_is_killed_and_restarted(tmp_path, br
         daemon.wait_log("event=broker_connection_lost", 10)
         time.sleep(1.0)                                       # the daemon retries meanwhile
         assert daemon.proc.poll() is None
-        assert daemon.status()["broker_connected"] is False
+        down = daemon.status()
+        assert down["broker_connected"] is False
+        assert "Connection refused" in down["broker_last_error"], down   # nothing listens now
+        shown = subprocess.run([sys.executable, "-m", "daemon.cli", "status", "-c", daemon.config],
+                               capture_output=True, text=True, timeout=30,
+                               env={**os.environ, "PYTHONPATH": ROOT})
+        assert "broker: last attempt failed: [Errno 111] Connection refused" in shown.stdout, shown
         broker.start()
         wait_until(lambda: "reconnects=1" in daemon.log(), 15, "the daemon to reconnect")
         probe = Probe(broker)
