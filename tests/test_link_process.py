@@ -120,7 +120,7 @@ def _forwarder(capacity: int):
     ours, theirs = socket.socketpair()
     queue = InboundQueue(capacity)
     forward = Forwarder(Connection(theirs.detach()), queue)
-    forward.link = SimpleNamespace(connected=True, reconnects=0, publish_dropped=0)
+    forward.link = SimpleNamespace(connected=True, reconnects=0, publish_dropped=0, last_error=None)
     stopping = threading.Event()
     thread = threading.Thread(target=forward.run, args=(stopping,), daemon=True)
     thread.start()
