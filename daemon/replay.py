@@ -124,7 +124,9 @@ class ReplayEngine(Engine):
 
     def __init__(self, settings: Settings, *args, **kwargs) -> None:
         super().__init__(settings, *args, **kwargs)
-        self.tally = {m.name: ModelTally(m.target.topic, m.training.warmup_samples)
+        # the skip counts are the engine's own (ModelRuntime.skipped, also shown by status)
+        self.tally = {m.name: ModelTally(m.target.topic, m.training.warmup_samples,
+                                         skipped=self.models[m.name].skipped)
                       for m in settings.models}
 
     def _on_target(self, rt, t: float, y: float) -> None:
@@ -136,10 +138,8 @@ class ReplayEngine(Engine):
             tally.warmup += 1
 
     def _skip(self, rt, exc: SampleSkipped) -> None:
-        tally = self.tally[rt.name]
-        tally.skipped[exc.reason] = tally.skipped.get(exc.reason, 0) + 1
-        tally.first_skip.setdefault(exc.reason, str(exc).split(": ", 1)[-1])
-        super()._skip(rt, exc)
+        super()._skip(rt, exc)               # counts it in rt.skipped, which the tally shares
+        self.tally[rt.name].first_skip.setdefault(exc.reason, str(exc).split(": ", 1)[-1])
 
     def _reject(self, exc: PayloadError, **where: object) -> None:
         tally = self.tally.get(str(where.get("model")))
