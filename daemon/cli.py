@@ -173,7 +173,10 @@ def _check(path: str) -> int:
     import yaml
 
     from .config import load_config, resolved_config
+    from .key_files import world_readable_keys
     settings = load_config(path, preflight=True)
+    for warning in world_readable_keys(settings):
+        print(f"warning: {warning}", file=sys.stderr)
     print(f"# {path}: valid. Resolved configuration (defaults filled in):")
     print(yaml.safe_dump(resolved_config(settings), sort_keys=False), end="")
     return EXIT_OK

@@ -21,6 +21,7 @@ from .config import diff_settings, load_config
 from .control import ControlServer
 from .engine import Engine
 from .errors import CheckpointError, ConfigError, ControlError, EdgepropError
+from .key_files import world_readable_keys
 from .link_process import LinkProcess, LinkProcessLost
 from .logs import Log
 from .metrics import Metrics, serve
@@ -92,11 +93,15 @@ class Service:
     # -- start and stop --------------------------------------------------------------
     def run(self) -> int:
         """Serve until SIGTERM/SIGINT; returns the process exit code."""
-        self.engine.restore_all()
         topics = self.engine.routes.topics
+        # a refused password file or certificate ends it here, before any model_* line
+        # could suggest that the start got further
         self.link = LinkProcess(self.settings.broker, self.settings.node, topics, log=self.log,
                                 log_level=self.settings.logging.level)
-        self.link.start()          # a refused password file or certificate ends it here
+        for warning in world_readable_keys(self.settings):
+            self.log("warning", "private_key_readable", detail=warning)
+        self.engine.restore_all()
+        self.link.start()
         try:
             self.http = serve(self.settings.metrics, self.metrics.registry, log=self.log)
         except BaseException:

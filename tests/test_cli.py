@@ -405,6 +405,8 @@ def test_run_refuses_an_empty_password_file_before_connecting(tmp_path):
     assert res.returncode == 2, res.stderr
     assert (f"broker.password_file: {secret!r} is empty; write the broker password into it"
             in res.stderr)
+    # refused before the models are set up: no model_fresh line ahead of the refusal to confuse
+    assert "event=model_" not in res.stderr, res.stderr
 
 
 # ---- file arguments: a directory, a missing file and an unreadable one each say so -------------

@@ -493,3 +493,26 @@ def test_basic_auth_without_tls_is_refused_beyond_loopback(tmp_path):
             f"listen on 127.0.0.1"], listen
     for listen in ("127.0.0.1:9740", "[::1]:9740", "localhost:9740"):
         parse_config(dict(MINIMAL, metrics={"listen": listen, "basic_auth": auth}))
+
+
+def test_world_readable_private_keys_are_named_by_their_key(tmp_path):
+    """The key inside a certificate file (no key_file) and the metrics key count too; group
+    read access (0640) does not."""
+    from daemon.key_files import world_readable_keys
+    files = {}
+    for name, mode in (("ca.pem", 0o644), ("both.pem", 0o644), ("metrics.key", 0o604),
+                       ("metrics.crt", 0o644)):
+        files[name] = str(tmp_path / name)
+        (tmp_path / name).write_text("x")
+        os.chmod(files[name], mode)
+    base = load_config(os.path.join(CONFIGS, "minimal.yaml"))
+    s = dataclasses.replace(
+        base, broker=dataclasses.replace(base.broker, tls=S.TlsSettings(files["ca.pem"], files["both.pem"])),
+        metrics=dataclasses.replace(base.metrics, tls=S.MetricsTls(files["metrics.crt"], files["metrics.key"])))
+    assert [w.split(":")[0] for w in world_readable_keys(s)] == ["broker.tls.cert_file",
+                                                                 "metrics.tls.key_file"]
+    assert "has mode 0604" in world_readable_keys(s)[1]
+    os.chmod(files["both.pem"], 0o640)
+    os.chmod(files["metrics.key"], 0o600)
+    assert world_readable_keys(s) == []
+    assert world_readable_keys(base) == []

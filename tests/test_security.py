@@ -81,6 +81,35 @@ def test_tls_to_a_real_mosquitto_listener(broker_factory, pki, tmp_path, client_
         assert daemon.stop() == 0, daemon.log()[-2000:]
 
 
+def test_a_private_key_every_user_can_read_is_warned_about(broker_factory, pki, tmp_path):
+    """Group-readable (0640, Debian's ssl-cert convention) passes quietly; others-readable is
+    named by check and by the daemon's start-up log, and the daemon still connects."""
+    broker = broker_factory(tls=pki, require_certificate=True)
+    key = tmp_path / "client.key"
+    key.write_bytes(open(pki.client_key, "rb").read())
+    cfg = write_config(tmp_path, broker, [model_config(warmup=10)])
+    set_config_keys(cfg, "broker", tls={"ca_file": pki.ca_file, "cert_file": pki.client_cert,
+                                        "key_file": str(key)})
+    warning = (f"warning: broker.tls.key_file: {str(key)!r} has mode 0644, so every user on this "
+               f"machine can read the private key; run `chmod 600 {key}` (or 640 with a group "
+               f"the service user is in)")
+    key.chmod(0o640)
+    res = cli(cfg, "check")
+    assert res.returncode == 0 and "warning" not in res.stderr, res.stderr
+    key.chmod(0o644)
+    res = cli(cfg, "check")
+    assert res.returncode == 0, res.stderr
+    assert res.stderr.splitlines() == [warning]
+    daemon = Daemon(cfg)
+    try:
+        daemon.wait_ready()
+        assert re.search(r"level=warning event=private_key_readable detail=.*has mode 0644",
+                         daemon.log()), daemon.log()[-2000:]
+        assert re.search(r"event=broker_connected .*tls=True", daemon.log())
+    finally:
+        assert daemon.stop() == 0, daemon.log()[-2000:]
+
+
 def test_tls_refusals_are_one_clear_line_per_attempt(broker_factory, pki, other_pki, tmp_path):
     broker = broker_factory(tls=pki, require_certificate=True)
     for sub in ("a", "b", "c"):
