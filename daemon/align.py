@@ -78,6 +78,17 @@ class InputHistory:
         self._v.insert(i, value)
         self._trim()
 
+    def clear(self) -> None:
+        """Forget every reading."""
+        self._t, self._v, self._lo = [], [], 0
+
+    def shift(self, dt: float) -> None:
+        """Move every reading's time by ``dt`` s (the clock that stamped them was stepped)."""
+        lo = self._lo
+        self._t = [t + dt for t in self._t[lo:]]
+        del self._v[:lo]
+        self._lo = 0
+
     def as_of(self, t: float) -> tuple[float, float] | None:
         """(reading time, value) of the newest reading at or before ``t``, or None."""
         j = bisect_right(self._t, t, self._lo) - 1
@@ -132,6 +143,7 @@ class FeatureAssembler:
         self._plan = [(inp.name, float(lag), self._hist[inp.name])
                       for inp in model.inputs for lag in inp.lags_s]
         self.n_features = len(self._plan)
+        self._arrival_stamped = [inp.name for inp in model.inputs if inp.time_field is None]
 
     def __repr__(self) -> str:
         return f"FeatureAssembler({self.model_name!r}, {self.n_features} features)"
@@ -158,6 +170,24 @@ class FeatureAssembler:
         if hist is None:
             self._check_name(input_name)
         hist.add(reading.t, reading.value)
+
+    def shift_arrival_stamped(self, dt: float) -> list[str]:
+        """Move the histories of inputs stamped on arrival (no ``time_field``) by ``dt`` s;
+        returns their names. Sensor-stamped inputs keep their sensors' own times."""
+        moved = [name for name in self._arrival_stamped if len(self._hist[name])]
+        for name in moved:
+            self._hist[name].shift(dt)
+        return moved
+
+    def clear_arrival_stamped_after(self, t: float) -> list[str]:
+        """Empty the histories of inputs stamped on arrival whose newest reading is after
+        ``t``; returns their names. A restored history ahead of the clock was stamped by a
+        clock since set back: where its readings sit in today's time cannot be known."""
+        ahead = [name for name in self._arrival_stamped
+                 if len(self._hist[name]) and self._hist[name].newest_t > t]
+        for name in ahead:
+            self._hist[name].clear()
+        return ahead
 
     def features_at(self, t: float) -> np.ndarray:
         """Feature vector for a target measured at ``t``; ``SampleSkipped`` if an input is stale."""

@@ -22,6 +22,7 @@ from .runtime import ModelRuntime
 from .settings import ModelSettings, Settings
 
 Publish = Callable[[str, bytes, int, bool], object]
+CLOCK_STEP_S = 1.0      # an arrival stamp this much older than the newest: the clock was set back
 
 ADVISORY = ("Predictions are advisory only. Never use them as, or in place of, a protective "
             "function (trip, interlock, safety instrumented system); local codes and licensed "
@@ -54,12 +55,18 @@ class Engine:
         self.guard_trips: dict[str, int] = {}
         self.messages = 0
         self._names_json: dict[str, str] = {}
+        self._newest_arrival = -math.inf      # arrival stamps only ever grow, unless the clock steps
 
     # -- one inbound message ---------------------------------------------------
     def handle(self, topic: str, payload: bytes, arrival_t: float) -> None:
         """Apply one MQTT message; bad input is counted and logged, never raised."""
         self.messages += 1
         started = time.perf_counter()
+        if arrival_t > self._newest_arrival:
+            self._newest_arrival = arrival_t
+        elif arrival_t < self._newest_arrival - CLOCK_STEP_S:
+            self._clock_stepped_back(self._newest_arrival - arrival_t)
+            self._newest_arrival = arrival_t
         try:
             routes = self.routes.lookup(topic)
         except PayloadError as exc:
@@ -88,6 +95,17 @@ class Engine:
                 self._trip_guard(rt, exc.reason, str(exc))
         if self.metrics is not None:
             self.metrics.observe_message(time.perf_counter() - started)
+
+    def _clock_stepped_back(self, step_s: float) -> None:
+        """Arrival stamps come from one clock in arrival order, so a stamp older than the
+        newest means the wall clock was set back (NTP stepping a box that booted with a wrong
+        time). Left alone, every reading stamped on arrival would count as late until the
+        clock caught up again, hours for an hour's step: their histories move back with it."""
+        moved = {name: rt.assembler.shift_arrival_stamped(-step_s) for name, rt in self.models.items()}
+        self.log("warning", "wall_clock_stepped_back", step_s=round(step_s, 3),
+                 inputs_moved=sum(map(len, moved.values())),
+                 action="histories of inputs stamped on arrival moved back with the clock; "
+                        "sensor-stamped inputs keep their sensors' times")
 
     def _decode_once(self, decoded: dict | None, payload: bytes, source, arrival_t: float) -> list:
         """Decode ``payload`` for ``source``, reusing (or re-raising) an earlier result for it."""
@@ -176,8 +194,12 @@ class Engine:
     # -- periodic work --------------------------------------------------------------
     def tick(self, now: float) -> None:
         """Predict-only cadence and the checkpoint timer; call often, between messages."""
+        if now < self.last_checkpoint_t:       # the clock was set back: count from now
+            self.last_checkpoint_t = now
         for rt in self.models.values():
             every = rt.settings.publish.every_s
+            if rt.last_tick is not None and now < rt.last_tick:
+                rt.last_tick = now
             if every and (rt.last_tick is None or now - rt.last_tick >= every):
                 rt.last_tick = now
                 self._predict_only(rt, now)
@@ -330,6 +352,11 @@ class Engine:
                     f"or restore the old settings")
             self.log("info", "model_restored" if cid else "model_fresh", model=rt.name, id=cid,
                      samples=rt.learner.samples, architecture=rt.learner.net.architecture)
+            ahead = rt.assembler.clear_arrival_stamped_after(self.clock() + CLOCK_STEP_S)
+            if ahead:
+                self.log("warning", "input_history_ahead_of_clock", model=rt.name,
+                         inputs=",".join(ahead), action="cleared; they refill from live readings "
+                         "(the clock was set back since the checkpoint was saved)")
             if self.metrics is not None:
                 if cid:
                     self.metrics.checkpoint_restored(rt.name, cid)

@@ -486,3 +486,43 @@ def test_message_json_writes_exactly_what_json_dumps_writes() -> None:
             _message_json('"m1"', values)
         with pytest.raises(ValueError):
             json.dumps(list(values), allow_nan=False)
+
+
+# -- the wall clock set back -----------------------------------------------------------------
+
+def test_wall_clock_set_back_moves_arrival_stamped_histories_and_timers_with_it(tmp_path) -> None:
+    """NTP stepping the box's clock back an hour: predictions go on at once (before, every
+    reading stamped on arrival counted as late for the whole hour) and the checkpoint timer
+    counts from the new time instead of waiting an hour for its old due time."""
+    plant = Plant(tmp_path, store=True, checkpoints={"every_s": 60})
+    plant.feed(120)
+    published, saved = len(plant.bodies), len(plant.rt.store.list())
+    plant.now -= 3600.0
+    plant.feed(100)
+    for _ in range(100):          # 100 x 1 s of clock: the timer must fire in this stretch
+        plant.now += 1.0
+        plant.engine.tick(plant.now)
+    assert "late" not in plant.engine.rejects, plant.engine.rejects
+    assert len(plant.bodies) - published == 100
+    (_, step), = plant.events("wall_clock_stepped_back")
+    assert 3598.0 < step["step_s"] < 3600.0 and step["inputs_moved"] == 2
+    assert len(plant.rt.store.list()) > saved
+    assert plant.messages[-1]["t"] < plant.messages[published - 1]["t"]   # the messages say wall time
+
+
+def test_histories_saved_ahead_of_a_clock_since_set_back_are_cleared_on_restore(tmp_path) -> None:
+    """Saved while the clock ran an hour ahead, restored after it was put right: the readings
+    stamped on arrival cannot be placed in today's time, so they go (before, they stood an
+    hour in the future and every new reading counted as late)."""
+    ahead = Plant(tmp_path, store=True)
+    ahead.feed(120)
+    ahead.engine.checkpoint_all("test")
+    plant = Plant(tmp_path, store=True)
+    plant.now = ahead.now - 3600.0
+    plant.engine.restore_all()
+    assert plant.rt.learner.samples == 120
+    (_, event), = plant.events("input_history_ahead_of_clock")
+    assert event["inputs"] == "speed,current"
+    plant.feed(20)
+    assert "late" not in plant.engine.rejects, plant.engine.rejects
+    assert len(plant.bodies) == 20
