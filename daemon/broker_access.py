@@ -80,6 +80,29 @@ def _client_certificate_problems(context: ssl.SSLContext, tls: TlsSettings) -> l
     return []
 
 
+def link_file_stamps(settings: BrokerSettings) -> dict[str, tuple]:
+    """Identity and change stamp of each password and TLS file the link loads, by config key.
+
+    A certificate renewed or a password rotated on disk shows here as a new stamp, so the
+    link loads the files again before its next connection attempt instead of presenting
+    the old ones until a restart. A missing file stamps as None.
+    """
+    tls = settings.tls
+    files = {"broker.password_file": settings.password_file}
+    if tls is not None:
+        files.update({"broker.tls.ca_file": tls.ca_file, "broker.tls.cert_file": tls.cert_file,
+                      "broker.tls.key_file": tls.key_file})
+    stamps = {}
+    for key, path in files.items():
+        if path:
+            try:
+                st = os.stat(path)
+                stamps[key] = (st.st_ino, st.st_size, st.st_mtime_ns, st.st_ctime_ns)  # ctime: chmod
+            except OSError:
+                stamps[key] = None
+    return stamps
+
+
 def check_protocol_and_user(settings: BrokerSettings) -> None:
     if settings.protocol not in ("3.1.1", "5"):
         raise ConfigError([f"broker.protocol: {settings.protocol!r} is not supported; use '3.1.1' or '5'"])

@@ -7,7 +7,7 @@ written by the thread that queued them when paho's thread is not using the socke
 predictions arrive as finished packets (``write_packets``) and skip paho's message objects.
 It leans on paho 2.x internals (``_sock_recv``, ``_sock_close``, ``_packet_write``,
 ``_in_packet``, ``_out_packet``, ``_sock``, ``_ssl``, ``_sockpairW``, ``_protocol``,
-``_msgtime_mutex``, ``_last_msg_out``, ``time_func``), hence
+``_msgtime_mutex``, ``_last_msg_out``, ``time_func``, ``_ssl_context``), hence
 the cap on paho's version; tests/test_mqtt_link.py runs it against a real broker.
 """
 from __future__ import annotations
@@ -111,6 +111,14 @@ class LinkClient(mqtt.Client):
                     wake.sock.send(b"0")
                 except BlockingIOError:
                     pass        # full of wake-ups already: paho's thread is awake
+
+    def replace_tls_context(self, context: ssl.SSLContext) -> None:
+        """Use ``context`` from the next connection on (renewed certificate or CA files).
+
+        paho's ``tls_set_context`` may be called only once per client; the context it keeps
+        is read afresh at every connect, so swapping it between attempts is enough.
+        """
+        self._ssl_context = context
 
     def write_packets(self, data: bytes, max_queued: int) -> bool:
         """Send ready-made QoS 0 PUBLISH packets (bytes that need no acknowledgement).

@@ -18,7 +18,9 @@ from typing import Callable, Protocol
 import paho.mqtt.client as mqtt
 from paho.mqtt.enums import CallbackAPIVersion, MQTTErrorCode
 
-from daemon.broker_access import check_protocol_and_user, read_password_file, tls_context
+from daemon.broker_access import (check_protocol_and_user, link_file_stamps, read_password_file,
+                                  tls_context)
+from daemon.errors import ConfigError
 from daemon.mqtt_client import LinkClient
 from daemon.settings import BrokerSettings
 
@@ -132,6 +134,7 @@ class BrokerLink:
         self._wake = threading.Event()    # set by stop(): ends a backoff wait at once
         self._stopping = False
         self._started = False
+        self._file_stamps = link_file_stamps(settings)   # as loaded by _build_client
         self._client = self._build_client(settings)
 
     def __repr__(self) -> str:
@@ -269,6 +272,36 @@ class BrokerLink:
         self._log("warning", event, reason=reason, retry_in_s=round(delay, 2),
                   hint=connect_hint(reason, self.settings))
         self._wake.wait(delay)          # stop() sets it so shutdown never waits out a backoff
+        if not self._stopping:
+            self._reload_changed_files()
+
+    def _reload_changed_files(self) -> None:
+        """Load the password and TLS files again if any changed on disk since last loaded.
+
+        A year unattended outlives a client certificate, a CA and a password: when the
+        broker starts refusing the old ones, the renewed files must be the ones presented
+        at the next attempt. Files that do not load (half-copied, wrong mode) are reported
+        once per change and the ones loaded before are kept.
+        """
+        stamps = link_file_stamps(self.settings)
+        changed = [key for key, stamp in stamps.items() if stamp != self._file_stamps.get(key)]
+        if not changed:
+            return
+        self._file_stamps = stamps
+        s = self.settings
+        try:
+            password = read_password_file(s.password_file) if s.password_file else None
+            context = tls_context(s.tls) if s.tls is not None else None
+        except ConfigError as exc:
+            self._log("warning", "broker_files_unusable", changed=",".join(changed),
+                      problem="; ".join(exc.problems),
+                      action="kept the files loaded before; loading again when they change")
+            return
+        if s.username:
+            self._client.username_pw_set(s.username, password)
+        if context is not None:
+            self._client.replace_tls_context(context)
+        self._log("info", "broker_files_reloaded", changed=",".join(changed))
 
     # ---- paho callbacks (network thread: must not raise) ---------------------------------
 

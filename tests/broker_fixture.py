@@ -173,6 +173,14 @@ class BrokerProcess:
                       f"require_certificate {'true' if self.require_certificate else 'false'}"]
         return self._file("mosquitto.conf", "\n".join(lines) + "\n")
 
+    def reconfigure(self, users: dict[str, str] | None = None, tls: TlsFiles | None = None) -> None:
+        """New passwords and/or TLS files (a rotation); they take effect at the next ``restart``."""
+        if users is not None:
+            self.users = dict(users)
+        if tls is not None:
+            self.tls = tls
+        self.config_path = self._write_config()
+
     def _command(self) -> list[str]:
         if self.kind == "amqtt":
             return [sys.executable, "-m", "amqtt.scripts.broker_script", "-c", self.config_path]

@@ -24,7 +24,7 @@ from daemon.config import load_config
 from daemon.runtime import ModelRuntime
 from daemon_proc import (
     DELETE, ROOT, Daemon, ReconnectingProbe, bearing_stream, cli, control, edited_broker,
-    live_broker_log, model_config, set_config_keys, write_config,
+    live_broker_log, model_config, set_config_keys, wait_until, write_config,
 )
 
 pytestmark = pytest.mark.integration
@@ -223,6 +223,77 @@ def test_wrong_password_is_refused_cleanly_with_backoff(tmp_path):
     assert min(delays) >= 0.2 and len(lines) <= 4.0 / 0.2 + 1
     assert "event=broker_connected" not in log and "Traceback" not in log
     assert WRONG not in log and SECRET not in log
+
+
+NEW_SECRET = "Pump7-rotated-Secr3t"
+
+
+def connects(daemon: Daemon) -> int:
+    return daemon.log().count("event=broker_connected")
+
+
+def test_a_rotated_broker_password_is_loaded_before_the_next_attempt(broker_factory, tmp_path):
+    """The broker's password is changed and the daemon's file rewritten, first with a careless
+    mode (refused once, the old password kept), then as it should be: the daemon logs in
+    again by itself, with no restart (before, it tried the old password until restarted)."""
+    broker = broker_factory(users={"edge": SECRET})
+    cfg = write_config(tmp_path, broker, [model_config(warmup=10)])
+    password_file = secret_file(tmp_path, SECRET)
+    set_config_keys(cfg, "broker", username="edge", password_file=password_file)
+    daemon = Daemon(cfg)
+    probe = None
+    try:
+        daemon.wait_ready()
+        broker.reconfigure(users={"edge": NEW_SECRET})
+        secret_file(tmp_path, NEW_SECRET, mode=0o644)
+        broker.restart()
+        wait_until(lambda: "event=broker_files_unusable" in daemon.log(), 15, "the refusal")
+        wait_until(lambda: "not authori" in daemon.log().lower(), 15, "the old password refused")
+        os.chmod(password_file, 0o600)
+        wait_until(lambda: connects(daemon) >= 2, 15, "a login with the new password")
+        log = daemon.log()
+        assert log.count("event=broker_files_unusable") == 1, log
+        unusable = next(l for l in log.splitlines() if "event=broker_files_unusable" in l)
+        assert "changed=broker.password_file" in unusable and "has mode 0644" in unusable
+        assert "event=broker_files_reloaded changed=broker.password_file" in log
+        probe = ReconnectingProbe(broker, username="edge", password=NEW_SECRET)
+        predictions_flow(daemon, probe)
+    finally:
+        if probe is not None:
+            probe.close()
+        code = daemon.stop()
+    assert code == 0, daemon.log()[-2000:]
+    assert SECRET not in daemon.log() and NEW_SECRET not in daemon.log()
+
+
+def test_a_renewed_ca_file_is_loaded_before_the_next_attempt(broker_factory, pki, other_pki, tmp_path):
+    """The broker moves to a certificate of a new CA and the daemon's CA file is replaced
+    (written beside it, then renamed over it, as deployment tools do): the daemon verifies
+    the new certificate at its next attempt, with no restart."""
+    broker = broker_factory(tls=pki)
+    ca_file = tmp_path / "broker-ca.pem"
+    ca_file.write_bytes(open(pki.ca_file, "rb").read())
+    cfg = write_config(tmp_path, broker, [model_config(warmup=10)])
+    set_config_keys(cfg, "broker", tls={"ca_file": str(ca_file)})
+    daemon = Daemon(cfg)
+    probe = None
+    try:
+        daemon.wait_ready()
+        broker.reconfigure(tls=other_pki)
+        broker.restart()
+        wait_until(lambda: "certificate verify failed" in daemon.log(), 15, "the new certificate refused")
+        fresh = tmp_path / "broker-ca.pem.new"
+        fresh.write_bytes(open(other_pki.ca_file, "rb").read())
+        os.replace(fresh, ca_file)
+        wait_until(lambda: connects(daemon) >= 2, 15, "a connection verified with the new CA")
+        assert "event=broker_files_reloaded changed=broker.tls.ca_file" in daemon.log()
+        probe = ReconnectingProbe(broker, tls=(other_pki.ca_file, other_pki.client_cert,
+                                               other_pki.client_key))
+        predictions_flow(daemon, probe)
+    finally:
+        if probe is not None:
+            probe.close()
+        assert daemon.stop() == 0, daemon.log()[-2000:]
 
 
 def test_secrets_outside_private_files_are_refused_without_echo(tmp_path):
