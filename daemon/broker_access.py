@@ -13,6 +13,7 @@ import ssl
 import stat
 
 from daemon.errors import ConfigError
+from daemon.file_stamps import Stamp, file_stamps
 from daemon.settings import BrokerSettings, TlsSettings
 
 
@@ -80,27 +81,14 @@ def _client_certificate_problems(context: ssl.SSLContext, tls: TlsSettings) -> l
     return []
 
 
-def link_file_stamps(settings: BrokerSettings) -> dict[str, tuple]:
-    """Identity and change stamp of each password and TLS file the link loads, by config key.
-
-    A certificate renewed or a password rotated on disk shows here as a new stamp, so the
-    link loads the files again before its next connection attempt instead of presenting
-    the old ones until a restart. A missing file stamps as None.
-    """
+def link_file_stamps(settings: BrokerSettings) -> dict[str, Stamp]:
+    """Stamps of the password and TLS files the broker link loads (daemon.file_stamps)."""
     tls = settings.tls
     files = {"broker.password_file": settings.password_file}
     if tls is not None:
         files.update({"broker.tls.ca_file": tls.ca_file, "broker.tls.cert_file": tls.cert_file,
                       "broker.tls.key_file": tls.key_file})
-    stamps = {}
-    for key, path in files.items():
-        if path:
-            try:
-                st = os.stat(path)
-                stamps[key] = (st.st_ino, st.st_size, st.st_mtime_ns, st.st_ctime_ns)  # ctime: chmod
-            except OSError:
-                stamps[key] = None
-    return stamps
+    return file_stamps(files)
 
 
 def check_protocol_and_user(settings: BrokerSettings) -> None:

@@ -24,6 +24,7 @@ from prometheus_client import CollectorRegistry, make_wsgi_app, start_http_serve
 from prometheus_client.exposition import ThreadingWSGIServer
 
 from daemon.errors import ConfigError, EdgepropError
+from daemon.file_stamps import changed_keys, file_stamps
 from daemon.settings import MetricsAuth, MetricsSettings, MetricsTls
 
 
@@ -109,6 +110,7 @@ def serve(settings: MetricsSettings, registry: CollectorRegistry,
     tls = settings.tls
     if tls is not None:
         _tls_context(tls.cert_file, tls.key_file)        # fail early, with a clear message
+    secret: list[bytes] = []
     try:
         if settings.basic_auth is None:
             # prometheus-client's own server, TLS included (0.26: certfile=/keyfile=).
@@ -117,10 +119,11 @@ def serve(settings: MetricsSettings, registry: CollectorRegistry,
                                               keyfile=tls.key_file if tls else None)
             _harden(httpd)
         else:
-            password = read_password(settings.basic_auth.password_file)
-            app = _basic_auth(make_wsgi_app(registry), settings.basic_auth.username, password)
+            secret.append(read_password(settings.basic_auth.password_file).encode())
+            app = _basic_auth(make_wsgi_app(registry), settings.basic_auth.username, secret)
             httpd, thread = _start_wsgi(host, port, app, tls)
         httpd.handle_error = FailedRequests(log)     # socketserver looks it up on the instance
+        _reload_changed_files_before_accepting(httpd, settings, secret, log)
     except OSError as e:
         raise EdgepropError(f"metrics.listen {settings.listen!r}: cannot listen ({e}); "
                             "choose a free port or set metrics.listen: null") from e
@@ -144,13 +147,19 @@ def read_password(path: str) -> str:
 
 def _tls_context(cert_file: str, key_file: str) -> ssl.SSLContext:
     ctx = ssl.SSLContext(ssl.PROTOCOL_TLS_SERVER)
-    try:
-        ctx.load_cert_chain(cert_file, key_file)
-    except (OSError, ssl.SSLError) as e:
-        raise ConfigError([f"metrics.tls: cannot load cert_file {cert_file} / key_file "
-                           f"{key_file}: {e}; expected the server certificate and its private "
-                           f"key (unencrypted) as PEM files"]) from e
+    _load_into(ctx, MetricsTls(cert_file, key_file))
     return ctx
+
+
+def _load_into(ctx: ssl.SSLContext, tls: MetricsTls) -> None:
+    """Load the pair into ``ctx``; on a live context the next accepted connection gets it
+    (each connection copies the certificate when it is accepted)."""
+    try:
+        ctx.load_cert_chain(tls.cert_file, tls.key_file)
+    except (OSError, ssl.SSLError) as e:
+        raise ConfigError([f"metrics.tls: cannot load cert_file {tls.cert_file} / key_file "
+                           f"{tls.key_file}: {e}; expected the server certificate and its private "
+                           f"key (unencrypted) as PEM files"]) from e
 
 
 def resolve_listen_host(listen: str) -> None:
@@ -191,9 +200,12 @@ def endpoint_problems(listen: Optional[str], tls: Optional[MetricsTls],
     return problems
 
 
-def _basic_auth(app: Callable, username: str, password: str) -> Callable:
-    """Wrap a WSGI app so only requests with the right Basic credentials reach it."""
-    user_b, pass_b = username.encode(), password.encode()
+def _basic_auth(app: Callable, username: str, secret: list[bytes]) -> Callable:
+    """Wrap a WSGI app so only requests with the right Basic credentials reach it.
+
+    ``secret`` holds the password as its one item, so a rotated password file can replace it.
+    """
+    user_b = username.encode()
 
     def guarded(environ: dict, start_response: Callable) -> Iterable[bytes]:
         scheme, _, token = environ.get("HTTP_AUTHORIZATION", "").partition(" ")
@@ -203,7 +215,7 @@ def _basic_auth(app: Callable, username: str, password: str) -> Callable:
         except ValueError:
             given_user = given_pass = b""
         user_ok = hmac.compare_digest(given_user, user_b)
-        pass_ok = hmac.compare_digest(given_pass, pass_b)     # both compared, always
+        pass_ok = hmac.compare_digest(given_pass, secret[0])  # both compared, always
         if scheme.lower() == "basic" and user_ok and pass_ok:
             return app(environ, start_response)
         start_response("401 Unauthorized",
@@ -211,6 +223,57 @@ def _basic_auth(app: Callable, username: str, password: str) -> Callable:
                         ("Content-Type", "text/plain; charset=utf-8")])
         return [b"credentials required\n"]
     return guarded
+
+
+RELOAD_CHECK_S = 1.0        # the files are looked at before an accept at most this often
+
+
+def _reload_changed_files_before_accepting(httpd: WSGIServer, settings: MetricsSettings,
+                                           secret: list[bytes], log: Optional[Callable[..., None]]) -> None:
+    """Before accepting a connection, load the certificate, key and password again if their
+    files changed (at most once a second): a renewed certificate is served from the next
+    scrape on, with no restart. A replacement that does not load is reported once per change
+    and the files loaded before stay in use. Each accepted connection is wrapped with the
+    listening socket's ``context``, so swapping that attribute is enough.
+    """
+    tls, auth = settings.tls, settings.basic_auth
+    files = {"metrics.basic_auth.password_file": auth.password_file if auth else None}
+    if tls is not None:
+        files.update({"metrics.tls.cert_file": tls.cert_file, "metrics.tls.key_file": tls.key_file})
+    say = log or (lambda *a, **k: None)
+    seen = {"stamps": file_stamps(files), "at": time.monotonic()}
+    accept = httpd.get_request
+
+    def reload_then_accept():
+        now = time.monotonic()
+        if now - seen["at"] >= RELOAD_CHECK_S:
+            seen["at"] = now
+            stamps = file_stamps(files)
+            changed = changed_keys(seen["stamps"], stamps)
+            if changed:
+                seen["stamps"] = stamps
+                _reload(httpd, tls, auth, secret, changed, say)
+        return accept()
+
+    httpd.get_request = reload_then_accept     # socketserver looks it up on the instance
+
+
+def _reload(httpd: WSGIServer, tls: Optional[MetricsTls], auth: Optional[MetricsAuth],
+            secret: list[bytes], changed: list[str], say: Callable[..., None]) -> None:
+    try:
+        if tls is not None:            # a fresh context first: a bad pair must not touch the live one
+            _tls_context(tls.cert_file, tls.key_file)
+        password = read_password(auth.password_file).encode() if auth is not None else None
+        if tls is not None:
+            _load_into(httpd.socket.context, tls)
+    except ConfigError as exc:
+        say("warning", "metrics_files_unusable", changed=",".join(changed),
+            problem="; ".join(exc.problems),
+            action="kept the files loaded before; loading again when they change")
+        return
+    if password is not None:
+        secret[0] = password
+    say("info", "metrics_files_reloaded", changed=",".join(changed))
 
 
 class _QuietHandler(WSGIRequestHandler):

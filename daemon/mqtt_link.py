@@ -21,6 +21,7 @@ from paho.mqtt.enums import CallbackAPIVersion, MQTTErrorCode
 from daemon.broker_access import (check_protocol_and_user, link_file_stamps, read_password_file,
                                   tls_context)
 from daemon.errors import ConfigError
+from daemon.file_stamps import changed_keys
 from daemon.mqtt_client import LinkClient
 from daemon.settings import BrokerSettings
 
@@ -284,7 +285,7 @@ class BrokerLink:
         once per change and the ones loaded before are kept.
         """
         stamps = link_file_stamps(self.settings)
-        changed = [key for key, stamp in stamps.items() if stamp != self._file_stamps.get(key)]
+        changed = changed_keys(self._file_stamps, stamps)
         if not changed:
             return
         self._file_stamps = stamps

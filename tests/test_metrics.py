@@ -3,6 +3,7 @@ from __future__ import annotations
 
 import base64
 import math
+import os
 import platform
 import socket
 import ssl
@@ -20,6 +21,7 @@ from sklearn.metrics import accuracy_score, log_loss, mean_squared_error
 
 from daemon.errors import ConfigError, EdgepropError
 from daemon.metrics import Metrics, parse_listen, serve
+from daemon.metrics_http import RELOAD_CHECK_S
 from daemon.runtime import ModelRuntime
 from daemon.settings import (InputSettings, MetricsAuth, MetricsSettings, MetricsTls,
                              ModelSettings, NetSettings, SourceSettings, TrainingSettings)
@@ -492,3 +494,65 @@ def test_failed_requests_are_one_rate_limited_line_not_a_traceback_each(
     assert [(level, event) for level, event, _ in lines] == [("warning", "metrics_request_failed")]
     assert "SSL" in lines[0][2]["error"] and lines[0][2]["client"] == "127.0.0.1"
     assert "Traceback" not in capfd.readouterr().err
+
+
+def _self_signed_pair(directory, name: str) -> tuple[str, str]:
+    openssl = require_tool("openssl")
+    cert, key = str(directory / f"{name}.crt"), str(directory / f"{name}.key")
+    subprocess.run([openssl, "req", "-x509", "-newkey", "ec", "-pkeyopt",
+                    "ec_paramgen_curve:prime256v1", "-nodes", "-keyout", key, "-out", cert,
+                    "-days", "2", "-subj", f"/CN={name}", "-addext", "subjectAltName=IP:127.0.0.1"],
+                   check=True, capture_output=True)
+    return cert, key
+
+
+def _replace(path: str, source: str) -> None:
+    """Write beside, then rename over: how a renewal should land (no half-read file)."""
+    tmp = path + ".new"
+    with open(source, "rb") as src, open(tmp, "wb") as dst:
+        dst.write(src.read())
+    os.chmod(tmp, 0o600)
+    os.replace(tmp, path)
+
+
+def test_renewed_certificate_and_rotated_password_are_served_without_a_restart(
+        pump: Metrics, tmp_path, password_file: str) -> None:
+    """Before, the endpoint served the certificate and checked the password it started
+    with until restarted: a renewed certificate meant failed scrapes after the old expired."""
+    old_cert, old_key = _self_signed_pair(tmp_path, "first")
+    new_cert, new_key = _self_signed_pair(tmp_path, "renewed")
+    cert, key = str(tmp_path / "live.crt"), str(tmp_path / "live.key")
+    _replace(cert, old_cert)
+    _replace(key, old_key)
+    lines: list[tuple] = []
+    server = serve(MetricsSettings("127.0.0.1:0", MetricsTls(cert, key),
+                                   MetricsAuth("prometheus", password_file)),
+                   pump.registry, log=lambda level, event, **f: lines.append((level, event, f)))
+    trust_old = ssl.create_default_context(cafile=old_cert)
+    trust_new = ssl.create_default_context(cafile=new_cert)
+    try:
+        assert get(server.url, ("prometheus", "s3cret-pump"), context=trust_old)[0] == 200
+        _replace(cert, new_cert)
+        _replace(key, new_key)
+        with open(password_file, "w") as f:
+            f.write("rotated-pump\n")
+        time.sleep(RELOAD_CHECK_S + 0.1)
+        assert get(server.url, ("prometheus", "rotated-pump"), context=trust_new)[0] == 200
+        assert get(server.url, ("prometheus", "s3cret-pump"), context=trust_new)[0] == 401
+        with pytest.raises((urllib.error.URLError, ssl.SSLError)):
+            get(server.url, ("prometheus", "rotated-pump"), context=trust_old)
+        # a careless replacement is reported once and the loaded password stays in force
+        os.chmod(password_file, 0o644)
+        time.sleep(RELOAD_CHECK_S + 0.1)
+        for _ in range(3):
+            assert get(server.url, ("prometheus", "rotated-pump"), context=trust_new)[0] == 200
+    finally:
+        server.close()
+    # (the refused old-certificate client also gave one metrics_request_failed line)
+    lines = [line for line in lines if line[1].startswith("metrics_files_")]
+    events = [(level, event, f.get("changed")) for level, event, f in lines]
+    assert events == [
+        ("info", "metrics_files_reloaded",
+         "metrics.basic_auth.password_file,metrics.tls.cert_file,metrics.tls.key_file"),
+        ("warning", "metrics_files_unusable", "metrics.basic_auth.password_file")], lines
+    assert "group/others" in lines[1][2]["problem"]
