@@ -234,3 +234,47 @@ def test_alerts_cover_each_failure_and_say_predictions_are_advisory() -> None:
         notes = rule["annotations"]
         assert notes["summary"].strip(), name
         assert "advisory" in notes["description"], name
+
+
+def _expected_alert(rules: dict, name: str, labels: dict) -> dict:
+    """What Prometheus fires for ``name`` with ``labels``: the rule's labels and its
+    annotations with each ``{{ $labels.x }}`` filled in (these rules use nothing else)."""
+    rule = rules[name]
+    fill = lambda text: re.sub(r"\{\{ \$labels\.(\w+) \}\}", lambda m: labels[m.group(1)], text)  # noqa: E731
+    assert "{{" not in "".join(map(fill, rule["annotations"].values())), name
+    return {"exp_labels": {**rule["labels"], **labels},
+            "exp_annotations": {k: fill(v) for k, v in rule["annotations"].items()}}
+
+
+def test_an_idle_model_alerts_as_idle_and_only_a_learning_one_as_unsaved(tmp_path: Path) -> None:
+    """Evaluated by Prometheus's own rule engine (promtool test rules) on made-up series: a
+    model whose target readings stopped (its checkpoint timer rightly saves nothing) must not
+    raise the storage alert, which sends the engineer to the disk; it raises EdgepropNoSamples.
+    A model that learns but is not saved raises EdgepropCheckpointStale alone."""
+    rules = {r["alert"]: r for g in load_rules()["groups"] for r in g["rules"]}
+    box = {"job": "edgeprop", "instance": "box:9740"}
+    series = [("edgeprop_start_time_seconds", {}, "0+0x180")]
+    for model, samples in (("idle", "50+0x180"), ("busy", "0+60x180")):
+        series += [("edgeprop_samples_total", {"model": model}, samples),
+                   ("edgeprop_checkpoint_last_success_timestamp_seconds", {"model": model}, "0+0x180")]
+
+    def selector(name: str, labels: dict) -> str:
+        return name + "{" + ",".join(f'{k}="{v}"' for k, v in {**box, **labels}.items()) + "}"
+
+    checks = [("EdgepropNoSamples", "idle"), ("EdgepropCheckpointStale", "busy")]
+    spec = {
+        "rule_files": [str(DEPLOY / "alerts.yml")],
+        "evaluation_interval": "1m",
+        "tests": [{
+            "interval": "1m",
+            "input_series": [{"series": selector(n, l), "values": v} for n, l, v in series],
+            "alert_rule_test": [
+                {"eval_time": "150m", "alertname": alert,
+                 "exp_alerts": [_expected_alert(rules, alert, {**box, "model": model})]}
+                for alert, model in checks],
+        }],
+    }
+    path = tmp_path / "alert-cases.yml"
+    path.write_text(yaml.safe_dump(spec, sort_keys=False))
+    out = run_promtool("test", "rules", str(path))
+    assert out.returncode == 0, out.stdout + out.stderr
