@@ -233,8 +233,8 @@ def _reload_changed_files_before_accepting(httpd: WSGIServer, settings: MetricsS
     """Before accepting a connection, load the certificate, key and password again if their
     files changed (at most once a second): a renewed certificate is served from the next
     scrape on, with no restart. A replacement that does not load is reported once per change
-    and the files loaded before stay in use. Each accepted connection is wrapped with the
-    listening socket's ``context``, so swapping that attribute is enough.
+    and the files loaded before stay in use. The pair is loaded into the listening socket's
+    own context, which each accepted connection copies from as it is wrapped.
     """
     tls, auth = settings.tls, settings.basic_auth
     files = {"metrics.basic_auth.password_file": auth.password_file if auth else None}
