@@ -327,10 +327,12 @@ class BrokerLink:
         self._connected.set()
         self._subscribe_to_all()
         client.publish(self.status_topic, "online", qos=STATUS_QOS, retain=True)
-        self._on_state_change()
+        # logged before the state change is reported, so the daemon's `ready` line (written
+        # by the other process once it hears of the connection) never comes before this one
         self._log("info", "broker_connected", host=self.settings.host, port=self.settings.port,
                   protocol=self.settings.protocol, tls=self.settings.tls is not None,
                   client_id=self.client_id, reconnects=self.reconnects)
+        self._on_state_change()
 
     def _subscribe_to_all(self) -> None:
         # clean session: the broker forgot our subscriptions, so send them again every time
