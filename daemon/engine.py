@@ -101,9 +101,8 @@ class Engine:
         newest means the wall clock was set back (NTP stepping a box that booted with a wrong
         time). Left alone, every reading stamped on arrival would count as late until the
         clock caught up again, hours for an hour's step: their histories move back with it."""
-        moved = {name: rt.assembler.shift_arrival_stamped(-step_s) for name, rt in self.models.items()}
-        self.log("warning", "wall_clock_stepped_back", step_s=round(step_s, 3),
-                 inputs_moved=sum(map(len, moved.values())),
+        moved = sum(len(rt.assembler.shift_arrival_stamped(-step_s)) for rt in self.models.values())
+        self.log("warning", "wall_clock_stepped_back", step_s=round(step_s, 3), inputs_moved=moved,
                  action="histories of inputs stamped on arrival moved back with the clock; "
                         "sensor-stamped inputs keep their sensors' times")
 
