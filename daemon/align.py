@@ -164,12 +164,12 @@ class FeatureAssembler:
         """The history of one input (for status and tests; do not add to it directly)."""
         return self._hist[self._check_name(input_name)]
 
-    def add(self, input_name: str, reading: Reading) -> None:
+    def add(self, input_name: str, reading: Reading | tuple[float, float]) -> None:
         """Record an input reading; ``PayloadError('late')`` if it is too far out of order."""
         hist = self._hist.get(input_name)
         if hist is None:
             self._check_name(input_name)
-        hist.add(reading.t, reading.value)
+        hist.add(*reading)
 
     def shift_arrival_stamped(self, dt: float) -> list[str]:
         """Move the histories of inputs stamped on arrival (no ``time_field``) by ``dt`` s;

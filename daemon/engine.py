@@ -17,7 +17,7 @@ from typing import Callable, Optional
 from .errors import CheckpointError, PayloadError, SampleSkipped
 from .learner import Diverged, Prediction
 from .logs import LogFn, RateLimited
-from .payloads import TARGET_ROLE, TopicRoutes, decode
+from .payloads import TARGET_ROLE, MessageDecoder, TopicRoutes
 from .runtime import ModelRuntime
 from .settings import ModelSettings, Settings
 
@@ -41,6 +41,7 @@ class Engine:
         self.metrics = metrics
         self.clock = clock
         self.routes = TopicRoutes(settings)
+        self.decoder = MessageDecoder(self.routes.sources_by_topic, settings.broker.max_payload_bytes)
         self.models: dict[str, ModelRuntime] = {}
         for m in settings.models:
             store = (stores or {}).get(m.name)
@@ -58,8 +59,13 @@ class Engine:
         self._newest_arrival = -math.inf      # arrival stamps only ever grow, unless the clock steps
 
     # -- one inbound message ---------------------------------------------------
-    def handle(self, topic: str, payload: bytes, arrival_t: float) -> None:
-        """Apply one MQTT message; bad input is counted and logged, never raised."""
+    def handle(self, topic: str, payload: bytes | None, arrival_t: float,
+               outcomes: tuple | None = None) -> None:
+        """Apply one MQTT message; bad input is counted and logged, never raised.
+
+        ``outcomes`` is what ``MessageDecoder.decode_message`` made of the payload, when the
+        broker connection's process has decoded it already (the payload then stays there).
+        """
         self.messages += 1
         started = time.perf_counter()
         if arrival_t > self._newest_arrival:
@@ -74,19 +80,22 @@ class Engine:
             if self.metrics is not None:      # taken from the queue like any other message
                 self.metrics.observe_message(time.perf_counter() - started)
             return
-        # models sharing a topic and field decode it once (None: a single route, nothing to share)
-        decoded: dict | None = {} if len(routes) > 1 else None
+        if outcomes is None:
+            outcomes = self.decoder.decode_message(topic, payload or b"", arrival_t)
         for route in routes:
             rt = self.models[route.model]
+            readings = outcomes[route.slot]
             try:
-                readings = self._decode_once(decoded, payload, route.source, arrival_t)
+                if type(readings) is not tuple:
+                    raise readings
                 _refuse_future(readings, arrival_t, rt.settings.align.max_ahead_s)
                 if route.role == TARGET_ROLE:
-                    for reading in readings:
-                        self._on_target(rt, reading.t, reading.value)
+                    for t, value in readings:
+                        self._on_target(rt, t, value)
                 else:
+                    add = rt.assembler.add
                     for reading in readings:
-                        rt.assembler.add(route.role, reading)
+                        add(route.role, reading)
             except PayloadError as exc:
                 self._reject(exc, model=rt.name, input=route.role)
             except SampleSkipped as exc:
@@ -105,21 +114,6 @@ class Engine:
         self.log("warning", "wall_clock_stepped_back", step_s=round(step_s, 3), inputs_moved=moved,
                  action="histories of inputs stamped on arrival moved back with the clock; "
                         "sensor-stamped inputs keep their sensors' times")
-
-    def _decode_once(self, decoded: dict | None, payload: bytes, source, arrival_t: float) -> list:
-        """Decode ``payload`` for ``source``, reusing (or re-raising) an earlier result for it."""
-        if decoded is None:
-            return decode(payload, source, arrival_t, self.settings.broker.max_payload_bytes)
-        hit = decoded.get(source)
-        if hit is None:
-            try:
-                hit = decode(payload, source, arrival_t, self.settings.broker.max_payload_bytes)
-            except PayloadError as exc:
-                hit = exc
-            decoded[source] = hit
-        if isinstance(hit, PayloadError):
-            raise hit
-        return hit
 
     def _on_target(self, rt: ModelRuntime, t: float, y: float) -> None:
         if rt.learner.binary and y not in (0.0, 1.0):
@@ -377,6 +371,15 @@ def _message_json(model_json: str, values: tuple) -> str:
     """The published message as ``json.dumps(msg, separators=(",", ":"), allow_nan=False)``
     writes it, keys in contract order; built directly, as json.dumps with options sets up a
     new encoder for every call. ValueError on a non-finite number, as json.dumps raises."""
+    t, predicted, measured, residual, low, high, outside, drift, checkpoint, samples = values
+    # The usual message (finite floats, both bounds, a checkpoint id) in one formatting call;
+    # x - x == 0.0 is false for nan and inf only. Anything else takes the general path.
+    if (type(t) is type(predicted) is type(measured) is type(residual) is type(low) is type(high)
+            is float and t - t == predicted - predicted == measured - measured == residual - residual
+            == low - low == high - high == 0.0 and type(checkpoint) is str and _json_safe(checkpoint)
+            and type(samples) is int and type(drift) is bool and (outside is None or type(outside) is bool)):
+        return _USUAL_MESSAGE % (model_json, t, predicted, measured, residual, low, high,
+                                 _JSON_FLAG[outside], _JSON_FLAG[drift], checkpoint, samples)
     parts = ['{"model":', model_json]
     for head, v in zip(_MESSAGE_HEADS, values):
         parts.append(head)
@@ -384,6 +387,16 @@ def _message_json(model_json: str, values: tuple) -> str:
         parts.append(float.__repr__(v) if type(v) is float and v - v == 0.0 else _json_value(v))
     parts.append("}")
     return "".join(parts)
+
+
+_USUAL_MESSAGE = ('{"model":%s,"t":%r,"predicted":%r,"measured":%r,"residual":%r,"low":%r,'
+                  '"high":%r,"outside":%s,"drift":%s,"checkpoint":"%s","samples":%d}')
+_JSON_FLAG = {False: "false", True: "true", None: "null"}
+
+
+def _json_safe(text: str) -> bool:
+    """True if json.dumps writes ``text`` as it is between quotes (a checkpoint id always)."""
+    return text.isascii() and text.isprintable() and '"' not in text and "\\" not in text
 
 
 def _json_value(v: object) -> str:
@@ -407,9 +420,9 @@ def _refuse_future(readings: list, arrival_t: float, max_ahead_s: float | None) 
     """A sensor clock far ahead would block its input (later readings look late) until it passes."""
     if max_ahead_s is None:
         return
-    for reading in readings:
-        if reading.t - arrival_t > max_ahead_s:
-            raise PayloadError("future_time", f"sensor time {reading.t:.3f} is {reading.t - arrival_t:.0f} s "
+    for t, _value in readings:
+        if t - arrival_t > max_ahead_s:
+            raise PayloadError("future_time", f"sensor time {t:.3f} is {t - arrival_t:.0f} s "
                                f"ahead of arrival; align.max_ahead_s is {max_ahead_s:g} "
                                f"(check the sensor's clock and time unit)")
 

@@ -19,7 +19,12 @@ class PayloadError(EdgepropError):
 
     def __init__(self, reason: str, detail: str) -> None:
         self.reason = reason
+        self.detail = detail
         super().__init__(f"{reason}: {detail}")
+
+    def __reduce__(self):
+        # crosses from the broker connection's process to the worker (MessageDecoder)
+        return (type(self), (self.reason, self.detail))
 
 
 class SampleSkipped(EdgepropError):

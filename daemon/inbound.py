@@ -15,11 +15,13 @@ from typing import Iterable
 
 @dataclass(slots=True)
 class Inbound:
-    """One message as it arrived: topic, raw payload, arrival time (epoch seconds)."""
+    """One message as it arrived: topic, raw payload, arrival time (epoch seconds), and
+    what ``MessageDecoder`` made of the payload (None: not decoded here)."""
 
     topic: str
     payload: bytes
     arrival_t: float
+    outcomes: tuple | None = None
 
 
 class InboundQueue:

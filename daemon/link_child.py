@@ -10,12 +10,18 @@ one end of a Unix socket pair, framed by ``multiprocessing.connection.Connection
 Everything that crosses it is built by edgeprop itself (payload bytes travel as opaque
 ``bytes``), so pickling it is safe.
 
-  parent -> child   ("setup", BrokerSettings, node, topics, log_level, queue_size, queue_bytes)
+The payloads are decoded here too (``MessageDecoder``, the engine's own code): this process
+and the broker use a fraction of their core, the worker all of its own, so each reading's
+JSON costs the worker nothing. Only the decoded (t, value) pairs or the refusal cross.
+
+  parent -> child   ("setup", BrokerSettings, node, topics, log_level, queue_size, queue_bytes,
+                     decoder)       decoder: a payloads.MessageDecoder, or None
                     ("pubs", [(topic, payload, qos, retain) | (count, qos0_packets), ...])
                     ("level", log_level)
                     ("stop", timeout_s)
   child -> parent   ("hello", pid) | ("fatal", [problem, ...])
-                    ("batch", [(topic, payload, arrival_t), ...], state)
+                    ("batch", [(topic, payload, arrival_t, outcomes), ...], state)
+                                    outcomes: decoder.decode_message's, or None
                     ("state", state)        when idle, so counters and `connected` stay fresh
                     ("stopped", state)      state: the fields of LinkState, as a plain tuple
 """
@@ -33,10 +39,12 @@ from .errors import ConfigError
 from .inbound import Inbound, InboundQueue
 from .logs import Log
 from .mqtt_link import BrokerLink
+from .payloads import MessageDecoder
 
 FORWARD_BATCH = 512          # readings per message to the parent at most
 IDLE_STATE_S = 0.2           # with no readings, send the link's state this often
 DIRECT_MAX = 16384           # bytes: a reading up to this size may skip the queue (see Forwarder)
+DECODE_HERE_MAX = 1024       # bytes: payloads up to this size are decoded here (see _decode)
 
 
 class LinkState(NamedTuple):
@@ -63,13 +71,14 @@ class Forwarder:
     so no reading overtakes an older one.
     """
 
-    def __init__(self, conn: Connection, queue: InboundQueue) -> None:
-        self.conn, self.queue = conn, queue
+    def __init__(self, conn: Connection, queue: InboundQueue,
+                 decoder: MessageDecoder | None = None) -> None:
+        self.conn, self.queue, self.decoder = conn, queue, decoder
         self.lock = threading.Lock()
         self.link: BrokerLink | None = None
         self._poll = select.poll()
         self._poll.register(conn.fileno(), select.POLLOUT)
-        self._held: list[tuple[str, bytes, float]] = []    # this read's readings (paho's thread only)
+        self._held: list[tuple] = []     # this read's (topic, payload, arrival_t, outcomes), paho's thread only
         self._held_bytes = 0
 
     def state(self) -> tuple:
@@ -84,8 +93,24 @@ class Forwarder:
         size = len(payload)
         if self._held_bytes + size > DIRECT_MAX or len(self._held) >= FORWARD_BATCH:
             self.end_of_read()
-        self._held.append((topic, payload, arrival_t))
+        self._held.append((topic, payload, arrival_t, self._decode(topic, payload, arrival_t)))
         self._held_bytes += size
+
+    def _decode(self, topic: str, payload: bytes, arrival_t: float) -> tuple | None:
+        """The decoder's outcomes; None leaves the payload to the worker.
+
+        Only small payloads (a sensor reading, a short SenML pack): this runs in paho's
+        thread, and a flood of large ones parsed here would slow the reads until the broker
+        dropped messages unseen. Left to the worker, they fill the bounded queue, which drops
+        the oldest and counts them. A bug in decoding must not end paho's thread either: the
+        worker then meets it and counts it as its own.
+        """
+        if self.decoder is None or len(payload) > DECODE_HERE_MAX:
+            return None
+        try:
+            return self.decoder.decode_message(topic, payload, arrival_t)
+        except Exception:       # noqa: BLE001 (the worker reports it)
+            return None
 
     def end_of_read(self) -> None:
         """paho's thread: send what is held now if that cannot block, else queue it (drop-oldest)."""
@@ -124,7 +149,8 @@ class Forwarder:
             with self.lock:
                 items = queue.get_many(FORWARD_BATCH, timeout=0) if waiting else []
                 if items:
-                    message = ("batch", [(i.topic, i.payload, i.arrival_t) for i in items], self.state())
+                    message = ("batch", [(i.topic, i.payload, i.arrival_t, i.outcomes) for i in items],
+                               self.state())
                 else:
                     message = ("state", self.state())
                 if not self._send_locked(message):
@@ -167,12 +193,12 @@ def run_child(conn: Connection) -> int:
     for signum in (signal.SIGTERM, signal.SIGINT, signal.SIGHUP):
         signal.signal(signum, signal.SIG_IGN)
     try:
-        _, settings, node, topics, level, queue_size, queue_bytes = conn.recv()
+        _, settings, node, topics, level, queue_size, queue_bytes, decoder = conn.recv()
     except (EOFError, OSError, ValueError):
         return 1
     log = Log(level)
     queue = InboundQueue(queue_size, queue_bytes)
-    forward = Forwarder(conn, queue)
+    forward = Forwarder(conn, queue, decoder)
     try:
         # a wake-up makes the forwarder report the new state now, not at its next idle round
         link = BrokerLink(settings, node, topics, log=log, on_state_change=queue.wake,

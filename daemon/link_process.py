@@ -24,6 +24,7 @@ from .errors import ConfigError, EdgepropError
 from .link_child import LinkState
 from .logs import LogFn
 from .mqtt_frames import publish_packet
+from .payloads import MessageDecoder
 from .broker_access import check_link_settings
 from .settings import BrokerSettings
 
@@ -41,11 +42,11 @@ class LinkProcess:
     """Start, feed and stop the child process that holds the one broker connection."""
 
     def __init__(self, settings: BrokerSettings, node: str, topics: list[str], log: LogFn,
-                 log_level: str = "info") -> None:
+                 log_level: str = "info", decoder: MessageDecoder | None = None) -> None:
         check_link_settings(settings)          # bad password file or certificate: exit 2 now
         self.settings = settings
         self._setup = ("setup", settings, node, list(topics), log_level,
-                       settings.queue_size, settings.queue_bytes)
+                       settings.queue_size, settings.queue_bytes, decoder)
         self.log = log
         self.state = LinkState()
         self.lost_publishes = 0      # publishes that could not reach the child (it had died)
@@ -223,8 +224,8 @@ class LinkProcess:
         except (OSError, ValueError):
             pass
 
-    def receive(self, timeout: float) -> list[tuple[str, bytes, float]]:
-        """The next batch of readings as (topic, payload, arrival_t), as they crossed the
+    def receive(self, timeout: float) -> list[tuple[str, bytes, float, tuple | None]]:
+        """The next batch of readings as (topic, payload, arrival_t, outcomes), as they crossed the
         socket (no object per reading); empty after ``timeout`` s, on ``wake()`` or a state report."""
         ready = select.select([self._conn.fileno(), self._wake_r], [], [], timeout)[0]
         if self._wake_r in ready:

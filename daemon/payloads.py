@@ -9,8 +9,7 @@ from __future__ import annotations
 
 import json
 import math
-from dataclasses import dataclass
-from typing import Any, NamedTuple
+from typing import Any, NamedTuple, Union
 
 from daemon.errors import PayloadError
 from daemon.settings import Settings, SourceSettings
@@ -31,8 +30,7 @@ REASONS = ("oversize", "undecodable", "non_finite", "wrong_type", "missing_field
            "bad_time", "bad_senml", "unknown_topic")
 
 
-@dataclass(frozen=True)
-class Reading:
+class Reading(NamedTuple):
     """One measured value at a time (epoch seconds)."""
 
     t: float
@@ -314,23 +312,32 @@ TARGET_ROLE = "<target>"   # cannot clash with an input name: those are [A-Za-z0
 
 
 class Route(NamedTuple):
-    """Where a topic's readings go: a model, the role (TARGET_ROLE or an input name), the source."""
+    """Where a topic's readings go: a model, the role (TARGET_ROLE or an input name), the
+    source, and ``slot``: the source's place among the distinct sources of its topic, which
+    is where ``MessageDecoder.decode_message`` puts what it decoded for it."""
 
     model: str
     role: str
     source: SourceSettings
+    slot: int = 0
 
 
 class TopicRoutes:
     """Exact-topic map from MQTT topic to every (model, role, source) reading it."""
 
     def __init__(self, settings: Settings) -> None:
-        routes: dict[str, list[Route]] = {}
+        readers: dict[str, list[tuple[str, str, SourceSettings]]] = {}
         for m in settings.models:
-            routes.setdefault(m.target.topic, []).append(Route(m.name, TARGET_ROLE, m.target))
+            readers.setdefault(m.target.topic, []).append((m.name, TARGET_ROLE, m.target))
             for inp in m.inputs:
-                routes.setdefault(inp.topic, []).append(Route(m.name, inp.name, inp.source))
-        self._routes = {topic: tuple(rs) for topic, rs in routes.items()}
+                readers.setdefault(inp.topic, []).append((m.name, inp.name, inp.source))
+        self._routes: dict[str, tuple[Route, ...]] = {}
+        self.sources_by_topic: dict[str, tuple[SourceSettings, ...]] = {}
+        for topic, found in readers.items():
+            sources = tuple(dict.fromkeys(source for _m, _r, source in found))
+            self.sources_by_topic[topic] = sources
+            self._routes[topic] = tuple(Route(model, role, source, sources.index(source))
+                                        for model, role, source in found)
 
     def __repr__(self) -> str:
         return f"TopicRoutes({len(self._routes)} topics)"
@@ -350,6 +357,40 @@ class TopicRoutes:
         except KeyError:
             raise PayloadError("unknown_topic", f"no model reads topic {_short(topic)!r}; "
                                f"configured topics: {_short(str(self.topics))}") from None
+
+
+Outcome = Union[tuple[tuple[float, float], ...], PayloadError]
+
+
+class MessageDecoder:
+    """Decodes a message once for each distinct source that reads its topic, refusals included.
+
+    A class of its own so that the broker connection's process can run it beside paho, on
+    the core the worker does not use, and hand the worker plain (t, value) pairs; the engine
+    runs the same code for replay and tests, so both see the same readings and refusals.
+    """
+
+    def __init__(self, sources_by_topic: dict[str, tuple[SourceSettings, ...]], max_bytes: int) -> None:
+        self._sources = dict(sources_by_topic)
+        self.max_bytes = int(max_bytes)
+
+    def __repr__(self) -> str:
+        return f"MessageDecoder({len(self._sources)} topics, max_bytes={self.max_bytes})"
+
+    def decode_message(self, topic: str, payload: bytes, arrival_t: float) -> tuple[Outcome, ...] | None:
+        """One outcome per distinct source of ``topic`` (``Route.slot`` indexes them): the
+        readings as (t, value) tuples, or the ``PayloadError`` that refused the payload.
+        None for a topic no model reads. Never raises for a payload."""
+        sources = self._sources.get(topic)
+        if sources is None:
+            return None
+        outcomes: list[Outcome] = []
+        for source in sources:
+            try:
+                outcomes.append(tuple([tuple(r) for r in decode(payload, source, arrival_t, self.max_bytes)]))
+            except PayloadError as exc:
+                outcomes.append(exc)
+        return tuple(outcomes)
 
 
 # --- message helpers ---------------------------------------------------------

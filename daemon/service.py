@@ -97,7 +97,7 @@ class Service:
         # a refused password file or certificate ends it here, before any model_* line
         # could suggest that the start got further
         self.link = LinkProcess(self.settings.broker, self.settings.node, topics, log=self.log,
-                                log_level=self.settings.logging.level)
+                                log_level=self.settings.logging.level, decoder=self.engine.decoder)
         for warning in world_readable_keys(self.settings):
             self.log("warning", "private_key_readable", detail=warning)
         self.engine.restore_all()
@@ -161,10 +161,10 @@ class Service:
         finally:
             self._shutdown()
 
-    def _handle_one(self, item: tuple[str, bytes, float]) -> None:
-        topic, payload, arrival_t = item
+    def _handle_one(self, item: tuple[str, bytes, float, tuple | None]) -> None:
+        topic, payload, arrival_t, outcomes = item
         try:
-            self.engine.handle(topic, payload, arrival_t)
+            self.engine.handle(topic, payload, arrival_t, outcomes)
         except Exception as exc:  # per-message catch: count, log, go on
             self.metrics.rejected("internal_error", None)
             self.engine.say_once("error", "message_failed", ("internal", type(exc).__name__),

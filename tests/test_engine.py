@@ -480,6 +480,14 @@ def test_message_json_writes_exactly_what_json_dumps_writes() -> None:
         expected = json.dumps(dict(zip(("model", *_MESSAGE_KEYS), (name, *values))),
                               separators=(",", ":"), allow_nan=False)
         assert _message_json(json.dumps(name), values) == expected
+    # the usual message (six finite floats, flags, a checkpoint id, a count) has its own path
+    ids = ["20261202T140000Z-000003", 'odd "id"', "back\\slash", "é", "\x7f", "tab\t"]
+    for i in range(5000):
+        values = (*(float(rng.normal() * 10.0 ** rng.integers(-300, 300)) for _ in range(6)),
+                  *(pool[rng.integers(3)] for _ in range(2)), ids[i % len(ids)], int(rng.integers(10 ** 9)))
+        expected = json.dumps(dict(zip(("model", *_MESSAGE_KEYS), ("m1", *values))),
+                              separators=(",", ":"), allow_nan=False)
+        assert _message_json('"m1"', values) == expected
     for bad in (math.nan, math.inf, -math.inf):
         values = (1.0, bad) + (None,) * (len(_MESSAGE_KEYS) - 2)
         with pytest.raises(ValueError):

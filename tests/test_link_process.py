@@ -19,11 +19,12 @@ from types import SimpleNamespace
 
 import pytest
 
-from daemon.inbound import InboundQueue
-from daemon.link_child import DIRECT_MAX, Forwarder
+from daemon.inbound import Inbound, InboundQueue
+from daemon.link_child import DECODE_HERE_MAX, DIRECT_MAX, Forwarder
 from daemon.link_process import OUTBOX_HOLD_S, OUTBOX_MAX, PROMPT_BATCH, LinkProcess
 from daemon.mqtt_frames import take_publishes
-from daemon.settings import BrokerSettings
+from daemon.payloads import MessageDecoder
+from daemon.settings import BrokerSettings, SourceSettings
 from daemon_proc import Daemon, Probe, child_pids, model_config, retained, wait_until, write_config
 
 
@@ -115,11 +116,11 @@ def test_a_killed_daemon_takes_its_link_process_with_it(running, broker):
 
 # ---- the forwarder inside the link process, in-process with a real socket pair ------------------
 
-def _forwarder(capacity: int):
+def _forwarder(capacity: int, decoder=None):
     """A Forwarder on one end of a socket pair, its thread running; the other end for the test."""
     ours, theirs = socket.socketpair()
     queue = InboundQueue(capacity)
-    forward = Forwarder(Connection(theirs.detach()), queue)
+    forward = Forwarder(Connection(theirs.detach()), queue, decoder)
     forward.link = SimpleNamespace(connected=True, reconnects=0, publish_dropped=0, last_error=None)
     stopping = threading.Event()
     thread = threading.Thread(target=forward.run, args=(stopping,), daemon=True)
@@ -162,9 +163,44 @@ def test_forwarded_readings_keep_their_order_whichever_way_they_go():
     producer.join(10)
     stopping.set()
     thread.join(5)
-    assert [int(p) for _t, p, _a in got] == list(range(n))
+    assert [int(p) for _t, p, _a, _o in got] == list(range(n))
     assert queue.dropped == 0
     assert 1 in sizes and max(sizes) > 1          # both paths were taken
+
+
+def test_readings_cross_decoded_by_the_engines_decoder_whichever_way_they_go():
+    """Decoding happens in the connection's process; the worker gets the decoder's outcomes.
+    A decoder that fails on a bug leaves that payload to the worker instead of ending paho's
+    thread."""
+    speed = SourceSettings("site/p1/speed", field="value")
+    decoder = MessageDecoder({"site/p1/speed": (speed,)}, 100)      # broker.max_payload_bytes
+    forward, queue, parent, stopping, thread = _forwarder(capacity=1000, decoder=decoder)
+    forward.on_message("site/p1/speed", b'{"value": 1450.5}', 10.0)
+    forward.on_message("site/p1/speed", b'{"value": "high"}', 11.0)
+    forward.on_message("site/p1/speed", b"9" * 101, 12.0)
+    forward.on_message("site/p1/other", b"1", 13.0)
+    forward.on_message("site/p1/speed", b" " * DECODE_HERE_MAX + b"1", 13.5)
+    forward.end_of_read()
+    got = _readings(parent, 5, 5)
+    assert [(t, p, a) for t, p, a, _o in got][0] == ("site/p1/speed", b'{"value": 1450.5}', 10.0)
+    assert got[0][3] == (((10.0, 1450.5),),)
+    assert got[1][3][0].reason == "wrong_type"
+    assert got[2][3][0].reason == "oversize"          # over max_payload_bytes, refused here
+    assert got[3][3] is None                          # no model reads it: the worker says so
+    assert got[4][3] is None                          # large: left to the worker and its queue
+    # a queued reading (the parent busy) carries its outcomes as well
+    queue.put(Inbound("site/p1/speed", b"x", 1.0))    # something waits: the next read queues
+    forward.on_message("site/p1/speed", b'{"value": 7.0}', 14.0)
+    forward.end_of_read()
+    got = _readings(parent, 2, 5)
+    assert [o for _t, _p, _a, o in got] == [None, (((14.0, 7.0),),)]
+    forward.decoder = SimpleNamespace(decode_message=lambda *a: 1 / 0)
+    forward.on_message("site/p1/speed", b'{"value": 8.0}', 15.0)
+    forward.end_of_read()
+    assert _readings(parent, 1, 5) == [("site/p1/speed", b'{"value": 8.0}', 15.0, None)]
+    stopping.set()
+    queue.wake()
+    thread.join(5)
 
 
 def test_the_network_thread_never_waits_for_a_parent_that_does_not_read():
@@ -201,7 +237,7 @@ def test_the_readings_of_one_read_reach_the_parent_as_one_batch():
     forward.end_of_read()
     sizes: list[int] = []
     got = _readings(parent, 5, 5, sizes)
-    assert [p for _t, p, _a in got] == [b"0", b"1", b"2", b"3", b"4"]
+    assert [p for _t, p, _a, _o in got] == [b"0", b"1", b"2", b"3", b"4"]
     assert sizes == [5]
     # a read larger than DIRECT_MAX bytes is cut, in order; a reading over it takes the queue
     big = b"y" * (DIRECT_MAX // 3)
@@ -210,7 +246,7 @@ def test_the_readings_of_one_read_reach_the_parent_as_one_batch():
     forward.on_message("site/p1/spectrum", b"z" * (DIRECT_MAX + 1), 7.0)
     forward.end_of_read()
     got = _readings(parent, 8, 5)
-    assert [p[-1:] for _t, p, _a in got] == [b"0", b"1", b"2", b"3", b"4", b"5", b"6", b"z"]
+    assert [p[-1:] for _t, p, _a, _o in got] == [b"0", b"1", b"2", b"3", b"4", b"5", b"6", b"z"]
     stopping.set()
     queue.wake()
     thread.join(5)

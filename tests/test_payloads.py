@@ -1,14 +1,16 @@
 """Payload decoding: every accepted shape and every drop reason, asserted by name."""
 from __future__ import annotations
 
+import dataclasses
 import json
 import math
+import pickle
 
 import pytest
 from hypothesis import given, settings, strategies as st
 
 from daemon.errors import PayloadError
-from daemon.payloads import LATEST_EPOCH_S, TARGET_ROLE, Reading, TopicRoutes, decode
+from daemon.payloads import LATEST_EPOCH_S, TARGET_ROLE, MessageDecoder, Reading, TopicRoutes, decode
 from daemon.settings import InputSettings, ModelSettings, Settings, SourceSettings
 
 ARRIVAL = 1733000000.0          # arrival clock used throughout (2024-11-30, epoch s)
@@ -327,14 +329,41 @@ def test_routes_share_topics_with_different_fields():
     assert routes.topics == ["site/p1/bearing_temp", "site/p1/flow",
                              "site/p1/motor", "site/p1/speed"]
     motor = routes.lookup("site/p1/motor")
-    assert [(r.model, r.role, r.source.field) for r in motor] == [
-        ("bearing_temp", "current", "current"), ("flow", "motor_speed", "speed")]
+    assert [(r.model, r.role, r.source.field, r.slot) for r in motor] == [
+        ("bearing_temp", "current", "current", 0), ("flow", "motor_speed", "speed", 1)]
     (target,) = routes.lookup("site/p1/bearing_temp")
-    assert tuple(target) == ("bearing_temp", TARGET_ROLE, SourceSettings("site/p1/bearing_temp", "value"))
+    assert tuple(target) == ("bearing_temp", TARGET_ROLE, SourceSettings("site/p1/bearing_temp", "value"), 0)
     # One payload, decoded once per route, gives each model its own field.
     payload = b'{"current": 12.1, "speed": 1450}'
     got = [decode(payload, r.source, ARRIVAL, LIMIT)[0].value for r in motor]
     assert got == [12.1, 1450.0]
+
+
+def test_message_decoder_decodes_once_per_source_and_keeps_refusals_apart():
+    """What the broker connection's process hands the worker: per distinct source of the
+    topic, the readings or the refusal, in the slots the routes point at."""
+    settings = _settings()
+    m1, m2 = settings.models
+    # a third model reading the same field of the shared topic shares its slot
+    m3 = dataclasses.replace(m2, name="flow2", inputs=(InputSettings("amps", "site/p1/motor", field="current"),))
+    routes = TopicRoutes(dataclasses.replace(settings, models=(m1, m2, m3)))
+    decoder = MessageDecoder(routes.sources_by_topic, LIMIT)
+    motor = routes.lookup("site/p1/motor")
+    assert [(r.model, r.slot) for r in motor] == [("bearing_temp", 0), ("flow", 1), ("flow2", 0)]
+    outcomes = decoder.decode_message("site/p1/motor", b'{"current": 12.1, "speed": 1450}', ARRIVAL)
+    assert outcomes == (((ARRIVAL, 12.1),), ((ARRIVAL, 1450.0),))
+    assert all(type(pair) is tuple for o in outcomes for pair in o)      # plain, cheap to pickle
+    # one field missing: that source's slot holds the refusal, the other its reading
+    current, speed = decoder.decode_message("site/p1/motor", b'{"speed": 1450}', ARRIVAL)
+    assert isinstance(current, PayloadError) and current.reason == "missing_field"
+    assert "no 'current'" in str(current)
+    assert speed == ((ARRIVAL, 1450.0),)
+    # the refusal crosses the process boundary whole
+    back = pickle.loads(pickle.dumps(current))
+    assert (type(back), back.reason, str(back)) == (PayloadError, current.reason, str(current))
+    assert decoder.decode_message("site/p1/elsewhere", b"1", ARRIVAL) is None
+    oversize = decoder.decode_message("site/p1/speed", b"1" * (LIMIT + 1), ARRIVAL)
+    assert oversize[0].reason == "oversize"
 
 
 def test_unknown_topic():
