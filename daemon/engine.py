@@ -119,8 +119,11 @@ class Engine:
         if rt.learner.binary and y not in (0.0, 1.0):
             raise PayloadError("wrong_type", f"binary target must be 0 or 1, got {y!r}")
         x = rt.assembler.features_at(t)
-        pred, result = rt.learner.predict_and_learn(
-            x, y, lambda p: self._publish_prediction(rt, t, p, y))
+        pred: Prediction | None = None
+        if rt.learner.warmed_up:
+            pred = rt.learner.predict(x)
+            self._publish_prediction(rt, t, pred, y)
+        result = rt.learner.learn(x, y, pred)
         if pred is None:
             if self.metrics is not None:
                 self.metrics.observe_sample(rt, None, y, result)

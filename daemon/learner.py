@@ -12,11 +12,10 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass
-from typing import Callable
 
 import numpy as np
 
-from nets import Loss, Network, RunningScaler, Window, finish_step, make_optimizer, sigmoid, train_step
+from nets import Loss, Network, RunningScaler, Window, make_optimizer, sigmoid, train_step
 from nets.bundle import HasState, bundle_arrays, check_architecture, network_header, split_parts
 
 from .settings import ModelSettings, TrainingSettings
@@ -89,7 +88,7 @@ class ModelLearner:
         self._boost_left = 0
         self._x1 = np.empty((1, self.n_features), self.net.dtype)
         self._y1 = np.empty((1, 1), self.net.dtype)
-        self._batches: dict[tuple[int, int], tuple[np.ndarray, np.ndarray]] = {}   # standardised minibatches
+        self._batch: tuple[np.ndarray, np.ndarray] | None = None    # standardised minibatch
 
     def __repr__(self) -> str:
         return f"ModelLearner({self.settings.name!r}, {self.net.architecture}, samples={self.samples})"
@@ -114,10 +113,6 @@ class ModelLearner:
         # one sample: plain floats beat numpy's per-call overhead, with the same arithmetic
         self._x1[0] = self.x_scaler.transform_one(x_raw.tolist(), self.training.input_clip)
         z = float(self.net.forward(self._x1)[0, 0])
-        return self._prediction(z, float(self.y_scaler.mean[0]), float(self.y_scaler.std[0]))
-
-    def _prediction(self, z: float, y_mean: float, y_std: float) -> Prediction:
-        """The network's output ``z`` in target units (or as a probability), or Diverged."""
         if not math.isfinite(z):
             raise Diverged(f"non-finite network output {z!r}")
         if abs(z) > MAX_OUTPUT_Z:
@@ -125,81 +120,38 @@ class ModelLearner:
                            f"target units, or logit)", "output_range")
         if self.binary:
             return Prediction(float(sigmoid(np.asarray(z))), z)
-        return Prediction(z * y_std + y_mean, z)
-
-    def predict_and_learn(self, x_raw: np.ndarray, y: float,
-                          publish: Callable[[Prediction], None]) -> tuple[Prediction | None, LearnResult]:
-        """``predict``, ``publish`` the prediction, then ``learn``: the same steps in the same
-        order, with the prediction taken from the first training step's forward pass.
-
-        The newest sample's input row rides along in front of the minibatch, standardised
-        as ``predict`` would (scalers as they were before this sample), and leaves the
-        backward pass out; a one-row forward pass of its own was a tenth of a sample's cost.
-        Nothing is published before warm-up, as with ``predict``.
-        """
-        tr = self.training
-        if not self.warmed_up or tr.steps_per_sample < 1:
-            pred = self.predict(x_raw) if self.warmed_up else None
-            if pred is not None:
-                publish(pred)
-            return pred, self.learn(x_raw, y, pred)
-        xl = x_raw.tolist()
-        x_new = self.x_scaler.transform_one(xl, tr.input_clip)
-        y_mean, y_std = float(self.y_scaler.mean[0]), float(self.y_scaler.std[0])
-        self._add_sample(x_raw, xl, y, count=False)
-        xs, ys = self._standardised_batch(extra_rows=1)
-        xs[0] = x_new
-        pred = self._prediction(float(self.net.forward(xs)[0, 0]), y_mean, y_std)
-        publish(pred)                        # the message counts the samples learned before it
-        self.counters.samples += 1
-        loss = self._loss_of(pred.z, y, y_mean, y_std)
-        self.counters.steps += 1
-        train_losses, norm = finish_step(self.net, self.opt, self.net.backward(xs.shape[0], ys, self.loss_fn, skip=1),
-                                         tr.weight_decay, tr.clip_norm)
-        for _ in range(tr.steps_per_sample - 1):
-            value, norm = self._step()
-            train_losses += value
-        return pred, self._finish_learning(loss, train_losses, norm, tr.steps_per_sample)
+        y = self.y_scaler
+        return Prediction(z * float(y.std[0]) + float(y.mean[0]), z)
 
     def sample_loss(self, pred: Prediction, y: float) -> float:
         """Loss of one prediction, in standardised target units (or on the logit)."""
-        return self._loss_of(pred.z, y, float(self.y_scaler.mean[0]), float(self.y_scaler.std[0]))
-
-    def _loss_of(self, z: float, y: float, y_mean: float, y_std: float) -> float:
-        y_std = y if self.binary else (y - y_mean) / y_std
+        y_std = y if self.binary else (y - float(self.y_scaler.mean[0])) / float(self.y_scaler.std[0])
         name = self.loss_fn.name
         if self.net.dtype == np.float64 and name != "logistic":
             # the float64 network's own arithmetic on one value, without six array calls
-            r = z - y_std
+            r = pred.z - y_std
             if name == "squared":
                 return r * r
             a, d = abs(r), self.loss_fn.delta
             return 0.5 * a * a if a <= d else d * (a - 0.5 * d)
         self._y1[0, 0] = y_std
-        self._x1[0, 0] = z
+        self._x1[0, 0] = pred.z
         return float(self.loss_fn.per_sample(self._x1[:, :1], self._y1)[0])
 
     def learn(self, x_raw: np.ndarray, y: float, pred: Prediction | None) -> LearnResult:
         """Add (x, y) to the window and take the configured SGD steps."""
         loss = self.sample_loss(pred, y) if pred is not None else float("nan")
-        self._add_sample(x_raw, x_raw.tolist(), y)
+        self.x_scaler.update_one(x_raw.tolist())
+        if not self.binary:
+            self.y_scaler.update_one((y,))
+        self.window.add(x_raw, y)
+        self.counters.samples += 1
         train_losses, norm, steps = 0.0, float("nan"), 0
         if self.warmed_up:
             for _ in range(self.training.steps_per_sample):
                 value, norm = self._step()
                 train_losses += value
                 steps += 1
-        return self._finish_learning(loss, train_losses, norm, steps)
-
-    def _add_sample(self, x_raw: np.ndarray, xl: list[float], y: float, count: bool = True) -> None:
-        self.x_scaler.update_one(xl)
-        if not self.binary:
-            self.y_scaler.update_one((y,))
-        self.window.add(x_raw, y)
-        if count:
-            self.counters.samples += 1
-
-    def _finish_learning(self, loss: float, train_losses: float, norm: float, steps: int) -> LearnResult:
         self._count_down_boost()
         if steps and not (math.isfinite(train_losses) and math.isfinite(norm)):
             raise Diverged(f"non-finite training loss {train_losses!r} or gradient norm {norm!r}")
@@ -207,32 +159,23 @@ class ModelLearner:
 
     def _step(self) -> tuple[float, float]:
         tr = self.training
-        xs, ys = self._standardised_batch()
-        self.counters.steps += 1
-        return train_step(self.net, self.opt, xs, ys, self.loss_fn, tr.weight_decay, tr.clip_norm)
-
-    def _standardised_batch(self, extra_rows: int = 0) -> tuple[np.ndarray, np.ndarray]:
-        """A minibatch from the window, standardised by the scalers as they are now, below
-        ``extra_rows`` rows left for the caller; in the network's dtype."""
-        tr = self.training
         xb, yb = self.window.sample(tr.batch_size, self.rng, tr.sampling)
-        xs_all, ys = self._batch_buffers(xb.shape[0], extra_rows)
-        self.x_scaler.transform(xb, tr.input_clip, out=xs_all[extra_rows:])
+        xs_buf, ys_buf = self._batch_buffers(xb.shape[0])
+        xs = self.x_scaler.transform(xb, tr.input_clip, out=xs_buf).astype(self.net.dtype, copy=False)
         if self.binary:
             ys = yb
         else:
-            np.subtract(yb, self.y_scaler.mean, out=ys)
+            ys = np.subtract(yb, self.y_scaler.mean, out=ys_buf)
             np.divide(ys, self.y_scaler.std, out=ys)
-        return xs_all.astype(self.net.dtype, copy=False), ys.astype(self.net.dtype, copy=False)
+        ys = ys.astype(self.net.dtype, copy=False)
+        self.counters.steps += 1
+        return train_step(self.net, self.opt, xs, ys, self.loss_fn, tr.weight_decay, tr.clip_norm)
 
-    def _batch_buffers(self, batch: int, extra_rows: int) -> tuple[np.ndarray, np.ndarray]:
-        """Float64 scratch for one standardised minibatch, kept for reuse."""
-        buf = self._batches.get((batch, extra_rows))
-        if buf is None:
-            if len(self._batches) > 4:       # a window filling up, a reloaded batch size
-                self._batches.clear()
-            buf = self._batches[batch, extra_rows] = (np.empty((batch + extra_rows, self.n_features)),
-                                                      np.empty((batch, 1)))
+    def _batch_buffers(self, batch: int) -> tuple[np.ndarray, np.ndarray]:
+        """Float64 scratch for one standardised minibatch, kept while the batch size holds."""
+        buf = self._batch
+        if buf is None or buf[0].shape[0] != batch:
+            buf = self._batch = (np.empty((batch, self.n_features)), np.empty((batch, 1)))
         return buf
 
     def weights_finite(self) -> bool:

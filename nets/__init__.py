@@ -10,12 +10,12 @@ from .network import Network
 from .optim import SGD, Adam, make_optimizer
 from .scaling import RunningScaler
 from .store import StateFileError, read_state, state_bytes, write_state
-from .train import finish_step, train_step
+from .train import train_step
 from .window import Window
 
 __all__ = [
     "ACTIVATIONS", "LOSS_NAMES", "Adam", "Loss", "Network", "RunningScaler", "SGD",
     "StateFileError", "Window", "check_architecture", "load_bundle", "make_optimizer",
-    "read_state", "restore_parts", "save_bundle", "sigmoid", "state_bytes", "finish_step", "train_step",
+    "read_state", "restore_parts", "save_bundle", "sigmoid", "state_bytes", "train_step",
     "write_state",
 ]

@@ -150,20 +150,9 @@ class Network:
 
     def gradient(self, x: np.ndarray, y: np.ndarray, loss: Loss) -> float:
         """Fill ``grads`` with d(batch-mean loss)/d(params) by backpropagation; return the loss."""
-        self.forward(x)
-        return self.backward(x.shape[0], y, loss)
-
-    def backward(self, batch: int, y: np.ndarray, loss: Loss, skip: int = 0) -> float:
-        """``gradient`` for the rows of the last ``forward`` of ``batch`` rows, leaving out the
-        first ``skip``: those were only predicted (an online learner predicts its newest
-        sample in the same pass that trains on a minibatch). ``y`` holds the other rows'
-        targets; the loss is their mean."""
-        buf = self._buffers[batch]
-        if skip:
-            value = loss.value_and_grad(buf.out[skip:], y, out=buf.out_delta[skip:])
-            buf.out_delta[:skip] = 0.0          # a zero delta: those rows add nothing
-        else:
-            value = loss.value_and_grad(buf.out, y, out=buf.out_delta)
+        z = self.forward(x)
+        buf = self._buffers[x.shape[0]]
+        value = loss.value_and_grad(z, y, out=buf.out_delta)
         delta = buf.deltas[-1]
         backprop = self._act.backprop
         for a_in, grad_block, w, prev, a_prev, tmp in buf.backward_plan:

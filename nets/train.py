@@ -18,12 +18,7 @@ def train_step(net: Network, opt: SGD | Adam, x: np.ndarray, y: np.ndarray, loss
     not decayed). Clipping rescales the whole gradient when its L2 norm exceeds
     ``clip_norm``; the returned norm is the one before clipping.
     """
-    return finish_step(net, opt, net.gradient(x, y, loss), weight_decay, clip_norm)
-
-
-def finish_step(net: Network, opt: SGD | Adam, value: float, weight_decay: float = 0.0,
-                clip_norm: float | None = None) -> tuple[float, float]:
-    """``train_step`` after the gradient is in ``net.grads`` (by ``gradient`` or ``backward``)."""
+    value = net.gradient(x, y, loss)
     g = net.grads
     if weight_decay:
         g += weight_decay * net.params * net.decay_mask

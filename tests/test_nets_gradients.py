@@ -180,24 +180,3 @@ def test_unknown_names_are_refused_with_the_choices():
         Loss("huber", delta=0.0)
     with pytest.raises(ValueError, match="tanh"):
         Network(2, [3], activation="swish")
-
-
-@pytest.mark.parametrize("loss_name", LOSSES)
-def test_backward_leaving_out_predicted_rows_matches_the_gradient_of_the_rest(loss_name):
-    """``backward(skip=k)`` after a forward over k predicted rows plus a batch gives that
-    batch's gradient: checked against central differences of the batch's own mean loss
-    (the reference above) and against ``gradient`` on the batch alone."""
-    rng = np.random.default_rng(11)
-    net = Network(3, [5, 4], "tanh", head="binary" if loss_name == "logistic" else "regression",
-                  rng=np.random.default_rng(5))
-    loss = Loss(loss_name, HUBER_DELTA)
-    x = rng.normal(size=(9, 3))
-    y = (rng.random((7, 1)) < 0.5).astype(float) if loss_name == "logistic" else rng.normal(size=(7, 1))
-    predicted = net.forward(x)[:2].copy()
-    value = net.backward(9, y, loss, skip=2)
-    skipping = net.grads.copy()
-    assert np.allclose(predicted, net.forward(x[:2]), rtol=1e-12, atol=0)     # as if alone
-    alone = net.gradient(x[2:], y, loss)
-    assert value == pytest.approx(alone, rel=1e-12)
-    assert np.allclose(skipping, net.grads, rtol=1e-10, atol=1e-14)
-    assert np.allclose(skipping, numeric_gradient(net, x[2:], y, loss), rtol=1e-6, atol=1e-9)
