@@ -140,8 +140,9 @@ class Engine:
         n = rt.settings.guard.blowup_samples
         if trip == "loss_blowup" and not rt.good_state_fits(rt.guard.bar, n):
             # the last good state is as wrong on these samples: the plant moved, not the model
-            self.log("warning", "loss_level_changed", model=rt.name, detail=rt.guard.describe(),
-                     action="guard relearns the normal loss level; weights and learning rate kept")
+            self.say_once("warning", "loss_level_changed", ("loss_level_changed", rt.name),
+                          model=rt.name, detail=rt.guard.describe(),
+                          action="guard relearns the normal loss level; weights and learning rate kept")
             rt.guard.restart()
         elif trip is not None:
             self._trip_guard(rt, trip, rt.guard.describe() if trip == "loss_blowup"
@@ -284,8 +285,10 @@ class Engine:
     def _on_drift(self, rt: ModelRuntime, event) -> None:
         action = rt.drift.response
         self.drift_events[rt.name] = self.drift_events.get(rt.name, 0) + 1
-        self.log("warning", "drift_detected", model=rt.name, source=event.source,
-                 score=event.score, action=action.kind)
+        # A slow process cycle can take an input across its shift level many times an hour:
+        # one line per model and source a minute (with the count held back); metrics count all.
+        self.say_once("warning", "drift_detected", ("drift_detected", rt.name, event.source),
+                      model=rt.name, source=event.source, score=event.score, action=action.kind)
         if self.metrics is not None:
             self.metrics.drift_event(rt.name, event.source)
         if action.kind == "boost_lr":

@@ -365,6 +365,28 @@ def drift_plant(tmp_path, on_drift: str, **extra) -> tuple[Plant, int]:
     return p, event_at
 
 
+def test_repeated_drift_lines_are_limited_per_model_and_source_and_all_counted(tmp_path) -> None:
+    """An input crossing its shift level with a slow process cycle fired a line each time
+    (the soak's binary model: about 50 an hour). One line per model and source a minute;
+    the next says how many were held back; status and metrics count every event."""
+    from daemon.drift import DriftEvent
+    p = Plant(tmp_path, warmup=50)
+    monotonic = [100.0]
+    p.engine.say_once.clock = lambda: monotonic[0]
+    for _ in range(10):
+        p.engine._on_drift(p.rt, DriftEvent("speed", 4.5, 40))
+        monotonic[0] += 1.0
+    p.engine._on_drift(p.rt, DriftEvent("loss", 1.2, 30))
+    assert [f["source"] for _i, f in p.events("drift_detected")] == ["speed", "loss"]
+    monotonic[0] += 60.0
+    p.engine._on_drift(p.rt, DriftEvent("speed", 4.1, 40))
+    *_, (_i, last) = p.events("drift_detected")
+    assert (last["source"], last["suppressed"], last["score"]) == ("speed", 9, 4.1)
+    assert p.engine.drift_events["m1"] == 12
+    assert p.metric("edgeprop_input_shift_events_total", input="speed") == 11
+    assert p.metric("edgeprop_loss_drift_events_total") == 1
+
+
 def flags_after(p: Plant, event_at: int, n: int) -> list[bool]:
     """The published drift flag of the n targets after the event's target."""
     first = 50 + 1                           # target index of the first published message
