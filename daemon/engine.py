@@ -308,13 +308,15 @@ class Engine:
         if cid is None:
             self.log("warning", "drift_restore_skipped", model=rt.name, since=since,
                      reason="no checkpoint from before the change" if changed_at is not None
-                     else "the change is older than the samples remembered since start or restore")
+                     else "the change is older than the sample times remembered (the last 4096, saved with "
+                     "each checkpoint since 2026-12-04)")
             return
         # the drift watch (flag up, references rebased) and the input histories follow the
         # live stream; only the learned state goes back
-        monitor, inputs = rt.drift, rt.assembler
+        monitor, inputs, times = rt.drift, rt.assembler, rt.sample_times()
         self.rollback(rt.name, cid, cause="drift")
         rt.drift, rt.assembler = monitor, inputs
+        rt.load_sample_times(times)         # they count the samples the kept watch has seen
 
     # -- operator actions (between two messages) ----------------------------------------
     def rollback(self, model: str, cid: str, cause: str = "operator") -> str:

@@ -79,7 +79,8 @@ class ModelRuntime:
     def time_of(self, samples_back: int) -> float | None:
         """Worker time of the sample ``samples_back`` scored samples ago (1 = the newest).
 
-        None when it is not remembered: older than the ring, or from before a restore.
+        None when it is not remembered: older than the ring, or from before a restore of
+        a checkpoint saved without them (before 2026-12-04).
         On the checkpoint store's clock, so ``store.id_before(time_of(k))`` is the newest
         checkpoint holding none of the newest ``k`` samples.
         """
@@ -90,6 +91,18 @@ class ModelRuntime:
     def _forget_sample_times(self) -> None:
         self.seen_n = 0
 
+    def sample_times(self) -> np.ndarray:
+        """The remembered sample times, oldest first (saved with the model: the restored
+        drift detectors count samples from before the restart, and a restore on drift must
+        find when the oldest of them was handled)."""
+        n = min(self.seen_n, TIME_RING)
+        return np.roll(self.seen_at, -(self.seen_n % TIME_RING))[TIME_RING - n:] if n else np.zeros(0)
+
+    def load_sample_times(self, times: np.ndarray) -> None:
+        times = np.asarray(times, np.float64).reshape(-1)[-TIME_RING:]
+        self.seen_at[:len(times)] = times
+        self.seen_n = len(times)
+
     # -- state --------------------------------------------------------------
     def state_arrays(self) -> dict[str, np.ndarray]:
         arrays = self.learner.state_arrays()
@@ -97,6 +110,7 @@ class ModelRuntime:
                           ("interval", self.interval), ("guard", self.guard)):
             for key, arr in obj.state().items():
                 arrays[f"{part}/{key}"] = np.asarray(arr)
+        arrays["times/handled"] = self.sample_times()
         return arrays
 
     def load_arrays(self, arrays: dict[str, np.ndarray]) -> None:
@@ -125,7 +139,9 @@ class ModelRuntime:
         self.interval, self.guard = parts["interval"], parts["guard"]
         self.good = dict(arrays)
         self.saved_samples = self.learner.samples
-        self._forget_sample_times()       # the restored detectors count from the checkpoint
+        # the restored detectors count from the checkpoint, and so do its sample times
+        # (a checkpoint from before they were saved has none)
+        self.load_sample_times(rest.get("times", {}).get("handled", np.zeros(0)))
 
     def meta(self, reason: str) -> dict:
         return {"model": self.name, "samples": self.learner.samples,

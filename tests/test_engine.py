@@ -457,6 +457,35 @@ def test_drift_restore_without_a_checkpoint_before_the_change_says_so(tmp_path) 
     assert skipped["reason"] == "no checkpoint from before the change"
 
 
+def test_drift_restore_after_a_restart_finds_the_checkpoint_from_before_the_change(tmp_path) -> None:
+    """The restored drift watch counts samples from before the restart, so the times those
+    samples were handled are saved with the checkpoint too. Before, a change that began
+    before a restart and was found after it logged drift_restore_skipped ("older than the
+    samples remembered") and the model learned on from the changed state."""
+    drift = {"on_drift": "restore", "hold_samples": 50, "boost_factor": 4.0, "boost_samples": 120}
+    p = Plant(tmp_path, store=True, warmup=50, drift=drift)
+    while p.index < CHANGE - 1:
+        p.feed(1)
+        if p.index % 100 == 0:
+            p.engine.checkpoint_all("test")
+    before_change = p.rt.checkpoint_id                    # saved at target 1200
+    p.feed(30, shift=SHIFT)
+    p.engine.checkpoint_all("test")                       # 30 changed samples in it
+    assert not p.events("drift_detected")
+    restarted = Plant(tmp_path, store=True, warmup=50, drift=drift)
+    restarted.now, restarted.stream, restarted.index = p.now, p.stream, p.index
+    restarted.engine.restore_all()
+    assert restarted.rt.learner.samples == CHANGE - 1 + 30
+    while not restarted.events("drift_detected") and restarted.index < CHANGE + 300:
+        restarted.feed(1, shift=SHIFT)
+    ((at, event),) = restarted.events("drift_detected")
+    assert event["source"] == "loss"
+    assert restarted.events("drift_restore_skipped") == []
+    ((_, back),) = restarted.events("rolled_back")
+    assert (back["cause"], back["to"]) == ("drift", before_change)
+    assert restarted.rt.learner.samples == 1200
+
+
 # -- the checkpoint timer --------------------------------------------------------------------
 
 def test_timer_saves_a_model_only_after_it_learned_something(tmp_path) -> None:
