@@ -308,8 +308,8 @@ class Engine:
         if cid is None:
             self.log("warning", "drift_restore_skipped", model=rt.name, since=since,
                      reason="no checkpoint from before the change" if changed_at is not None
-                     else "the change is older than the sample times remembered (the last 4096, saved with "
-                     "each checkpoint since 2026-12-04)")
+                     else "the change is older than the sample times remembered (the last 4096; a "
+                     "checkpoint written by an older edgeprop has none)")
             return
         # the drift watch (flag up, references rebased) and the input histories follow the
         # live stream; only the learned state goes back

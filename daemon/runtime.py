@@ -80,7 +80,7 @@ class ModelRuntime:
         """Worker time of the sample ``samples_back`` scored samples ago (1 = the newest).
 
         None when it is not remembered: older than the ring, or from before a restore of
-        a checkpoint saved without them (before 2026-12-04).
+        a checkpoint saved without them (by an older edgeprop).
         On the checkpoint store's clock, so ``store.id_before(time_of(k))`` is the newest
         checkpoint holding none of the newest ``k`` samples.
         """
