@@ -59,12 +59,12 @@ class Engine:
         self._newest_arrival = -math.inf      # arrival stamps only ever grow, unless the clock steps
 
     # -- one inbound message ---------------------------------------------------
-    def handle(self, topic: str, payload: bytes | None, arrival_t: float,
+    def handle(self, topic: str, payload: bytes, arrival_t: float,
                outcomes: tuple | None = None) -> None:
         """Apply one MQTT message; bad input is counted and logged, never raised.
 
-        ``outcomes`` is what ``MessageDecoder.decode_message`` made of the payload, when the
-        broker connection's process has decoded it already (the payload then stays there).
+        ``outcomes`` is what ``MessageDecoder.decode_message`` made of the payload when the
+        broker connection's process has decoded it already; None: decode it here.
         """
         self.messages += 1
         started = time.perf_counter()
@@ -81,7 +81,7 @@ class Engine:
                 self.metrics.observe_message(time.perf_counter() - started)
             return
         if outcomes is None:
-            outcomes = self.decoder.decode_message(topic, payload or b"", arrival_t)
+            outcomes = self.decoder.decode_message(topic, payload, arrival_t)
         for route in routes:
             rt = self.models[route.model]
             readings = outcomes[route.slot]

@@ -12,7 +12,7 @@ Everything that crosses it is built by edgeprop itself (payload bytes travel as 
 
 The payloads are decoded here too (``MessageDecoder``, the engine's own code): this process
 and the broker use a fraction of their core, the worker all of its own, so each reading's
-JSON costs the worker nothing. Only the decoded (t, value) pairs or the refusal cross.
+JSON costs the worker nothing. The decoded (t, value) pairs, or the refusal, cross with it.
 
   parent -> child   ("setup", BrokerSettings, node, topics, log_level, queue_size, queue_bytes,
                      decoder)       decoder: a payloads.MessageDecoder, or None
