@@ -85,9 +85,10 @@ class Engine:
         for route in routes:
             rt = self.models[route.model]
             readings = outcomes[route.slot]
+            if type(readings) is not tuple:          # the decoder's refusal (a PayloadError)
+                self._reject(readings, model=rt.name, input=route.role)
+                continue
             try:
-                if type(readings) is not tuple:
-                    raise readings
                 _refuse_future(readings, arrival_t, rt.settings.align.max_ahead_s)
                 if route.role == TARGET_ROLE:
                     for t, value in readings:

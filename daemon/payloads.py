@@ -389,7 +389,8 @@ class MessageDecoder:
             try:
                 outcomes.append(tuple([tuple(r) for r in decode(payload, source, arrival_t, self.max_bytes)]))
             except PayloadError as exc:
-                outcomes.append(exc)
+                # kept without its traceback, whose frame holds this list: no cycle to collect
+                outcomes.append(exc.with_traceback(None))
         return tuple(outcomes)
 
 
